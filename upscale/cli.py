@@ -1,0 +1,251 @@
+"""Command line: ``upscale VERB ...``. Exit codes: 0 success, 2 bad usage or input,
+1 internal failure, 130 interrupted."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import sys
+import textwrap
+from contextlib import contextmanager
+
+from .errors import InputError
+from .version import tool_version
+
+log = logging.getLogger("upscale")
+
+EXAMPLES = {
+    "coarsen": """\
+        upscale coarsen fields/demo.nc -o fields/demo_coarse.nc --ratio 5 5 5 --method flow --bc sealed
+        upscale coarsen fine.nc -o coarse.nc --ratio 4 4 1 --edges z=0,3,10,20 --method arithmetic,arithmetic,harmonic
+        upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --method flow --bc periodic --border 2 --multipliers""",
+    "inspect": "upscale inspect fields/demo.nc",
+    "make-field": """\
+        upscale make-field lognormal -o fields/random.nc --shape 60 220 85 --sigma 2 --correlation 8 8 2 --seed 1
+        upscale make-field layered -o fields/layers.nc --thickness 2 1 3 --permeability 100 1 500
+        upscale make-field channels -o fields/channels.nc --shape 80 60 20 --seed 3
+        upscale make-field demo -o fields/demo.nc""",
+    "demo": "upscale demo            # writes fields/demo*.nc and reports/demo/",
+    "check": "upscale check fields/demo.nc fields/demo_coarse.nc --report reports/demo",
+    "layers": "upscale layers fields/demo.nc --target 10",
+    "bench": "upscale bench            # prints timings and ratios side by side",
+}
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit 2
+        self.exit(2, f"upscale: error: {message} (see: {self.prog} --help)\n")
+
+
+def _common() -> argparse.ArgumentParser:
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--quiet", action="store_true", help="no progress bars")
+    common.add_argument("--verbose", action="store_true", help="detailed log messages")
+    common.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
+    return common
+
+
+def _add(sub, name: str, help_text: str) -> argparse.ArgumentParser:
+    epilog = "example:\n" + textwrap.indent(textwrap.dedent(EXAMPLES[name]), "  ")
+    return sub.add_parser(name, help=help_text, description=help_text, epilog=epilog, parents=[_common()],
+                          formatter_class=argparse.RawDescriptionHelpFormatter)
+
+
+def _edges_argument(text: str) -> tuple[str, list[int]]:
+    try:
+        axis, values = text.split("=", 1)
+        return axis.strip(), [int(v) for v in values.replace(",", " ").split()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"edges must look like z=0,3,10,20, got '{text}'") from None
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="upscale", description="Coarsen fine geomodels for flow simulation and "
+                     "check that the coarse grid still flows like the fine one.")
+    parser.add_argument("--version", action="version", version=f"upscale {tool_version()}")
+    sub = parser.add_subparsers(dest="verb", required=True, parser_class=_Parser)
+
+    p = _add(sub, "coarsen", "coarsen a fine field into a coarse grid file")
+    p.add_argument("fine", help="fine field (NetCDF)")
+    p.add_argument("-o", "--output", required=True, help="coarse grid file to write (NetCDF)")
+    p.add_argument("--ratio", nargs=3, type=int, metavar=("RX", "RY", "RZ"),
+                   help="fine cells per coarse cell along x, y, z (default 1 1 1 where no edges)")
+    p.add_argument("--edges", action="append", type=_edges_argument, default=[], metavar="AXIS=E0,E1,...",
+                   help="fine-index edges of the coarse cells along one axis, e.g. z=0,3,10,20 (repeatable)")
+    p.add_argument("--method", default="flow", help="arithmetic, harmonic, geometric, power or flow; "
+                   "or one per axis: arithmetic,arithmetic,harmonic (default flow)")
+    p.add_argument("--omega", type=float, help="exponent of the power average")
+    p.add_argument("--bc", default="sealed", help="local boundary condition for flow: sealed, periodic, linear")
+    p.add_argument("--border", type=int, default=0, help="border ring of fine cells around each block (flow)")
+    p.add_argument("--multipliers", action="store_true", help="compute flow-based transmissibility multipliers")
+    p.add_argument("--units", default="metric", help="transmissibility units: metric or field")
+
+    p = _add(sub, "inspect", "summarise a field file: sizes, value ranges, heterogeneity")
+    p.add_argument("file", help="field or coarse grid (NetCDF)")
+    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+    p = _add(sub, "make-field", "write a seeded synthetic field")
+    p.add_argument("kind", choices=("lognormal", "layered", "channels", "demo"))
+    p.add_argument("-o", "--output", required=True, help="file to write (NetCDF)")
+    p.add_argument("--shape", nargs=3, type=int, metavar=("NX", "NY", "NZ"))
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--sigma", type=float, default=2.0, help="std of ln k (lognormal)")
+    p.add_argument("--correlation", nargs=3, type=float, default=(8, 8, 2), metavar=("LX", "LY", "LZ"),
+                   help="correlation lengths in cells (lognormal)")
+    p.add_argument("--kv-kh", type=float, default=0.1, help="vertical to horizontal permeability ratio")
+    p.add_argument("--cell", nargs=3, type=float, default=(20.0, 10.0, 2.0), metavar=("DX", "DY", "DZ"),
+                   help="cell size in m (lognormal)")
+    p.add_argument("--thickness", nargs="+", type=float, help="layer thicknesses in m (layered)")
+    p.add_argument("--permeability", nargs="+", type=float, help="layer permeabilities in mD (layered)")
+    p.add_argument("--channels", type=int, default=6, help="number of channels (channels)")
+
+    p = _add(sub, "demo", "run the whole job on the built-in synthetic sector")
+    p.add_argument("--dir", default=".", help="folder that receives fields/ and reports/ (default: here)")
+
+    p = _add(sub, "check", "compare a coarse grid with its fine field by whole-model flow")
+    p.add_argument("fine")
+    p.add_argument("coarse")
+    p.add_argument("--report", help="folder for index.html and metrics.json")
+
+    p = _add(sub, "layers", "judge a grouping of fine layers and propose the best one")
+    p.add_argument("fine")
+    p.add_argument("--target", type=int, required=True, help="number of coarse layers")
+    p.add_argument("--edges", type=lambda t: [int(v) for v in t.replace(",", " ").split()],
+                   help="a grouping to judge, e.g. 0,3,10,20")
+    p.add_argument("--figure", help="PNG file for the layer profile")
+
+    p = _add(sub, "bench", "time the upscaling against the plain per-block approach")
+    p.add_argument("--shape", nargs=3, type=int, default=(60, 220, 85), metavar=("NX", "NY", "NZ"))
+    p.add_argument("--sample", type=int, default=300, help="blocks timed with the plain loop")
+    return parser
+
+
+@contextmanager
+def progress_bar(total: int, label: str, quiet: bool):
+    """A tqdm bar on stderr (off when quiet or not a terminal); yields an update callable."""
+    from tqdm import tqdm
+
+    bar = tqdm(total=total, desc=label, unit="block", disable=quiet or not sys.stderr.isatty(),
+               file=sys.stderr, leave=False)
+    try:
+        yield bar.update
+    finally:
+        bar.close()
+
+
+def _coarsen(args) -> int:
+    from .coarse_grid import coarsen
+    from .field import check_output_path, open_field, write
+    from .partition import make_partition
+
+    out = check_output_path(args.output, inputs=(args.fine,))
+    fine = open_field(args.fine)
+    edges = dict(args.edges)
+    shape = tuple(fine.sizes[d] for d in ("x", "y", "z"))
+    blocks = 1
+    for n in make_partition(shape, args.ratio, edges).shape:
+        blocks *= n
+    with progress_bar(blocks, "local solves", args.quiet) as update:
+        coarse = coarsen(fine, ratio=args.ratio, edges=edges, method=args.method, bc=args.bc,
+                         border=args.border, omega=args.omega, multipliers=args.multipliers,
+                         units=args.units, progress=update)
+    write(coarse, out)
+    print(f"wrote {out} ({' x '.join(str(coarse.sizes[d]) for d in ('x', 'y', 'z'))} cells, "
+          f"method {coarse.attrs['method']})")
+    return 0
+
+
+def _inspect(args) -> int:
+    from .field import open_field
+    from .summary import field_summary, format_summary
+
+    summary = field_summary(open_field(args.file))
+    print(json.dumps(summary, indent=2) if args.json else format_summary(summary))
+    return 0
+
+
+def _make_field(args) -> int:
+    from . import synthetic
+    from .field import check_output_path, write
+
+    out = check_output_path(args.output)
+    if args.kind == "lognormal":
+        ds = synthetic.lognormal_field(shape=tuple(args.shape or (60, 220, 85)), sigma_ln=args.sigma,
+                                       correlation_lengths=tuple(args.correlation), kv_kh=args.kv_kh,
+                                       cell_size=tuple(args.cell), seed=args.seed)
+    elif args.kind == "layered":
+        if not args.thickness or not args.permeability or len(args.thickness) != len(args.permeability):
+            raise InputError("layered fields need --thickness and --permeability with one value per layer")
+        ds = synthetic.layered_field(args.thickness, args.permeability, kv_kh=args.kv_kh)
+    elif args.kind == "channels":
+        ds = synthetic.channel_field(tuple(args.shape or (80, 60, 20)), args.channels, 4, args.seed)
+    else:
+        ds = synthetic.demo_field(seed=args.seed or 7)
+    write(ds, out)
+    print(f"wrote {out}")
+    return 0
+
+
+def _demo(args) -> int:
+    from .demo import run_demo
+
+    run_demo(args.dir, quiet=args.quiet)
+    return 0
+
+
+def _check(args) -> int:
+    from .quality import run_check
+
+    run_check(args.fine, args.coarse, args.report)
+    return 0
+
+
+def _layers(args) -> int:
+    from .field import arrays, open_field
+    from .layering import compare_groupings, format_comparison, layer_statistics, plot_layer_profile
+
+    cells = arrays(open_field(args.fine))
+    result = compare_groupings(cells, args.target, edges=args.edges)
+    print(format_comparison(result))
+    if args.figure:
+        groupings = {name: value["edges"] for name, value in result.items() if "edges" in value}
+        plot_layer_profile(layer_statistics(cells), groupings, args.figure)
+        print(f"wrote {args.figure}")
+    return 0
+
+
+def _bench(args) -> int:
+    from .bench import run_bench
+
+    run_bench(shape=tuple(args.shape), sample=args.sample, quiet=args.quiet)
+    return 0
+
+
+VERBS = {"coarsen": _coarsen, "inspect": _inspect, "make-field": _make_field, "demo": _demo,
+         "check": _check, "layers": _layers, "bench": _bench}
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
+                        format="upscale: %(levelname)s: %(message)s", stream=sys.stderr)
+    try:
+        return VERBS[args.verb](args)
+    except InputError as exc:
+        print(f"upscale: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("upscale: interrupted; no output was left behind", file=sys.stderr)
+        return 130
+    except Exception as exc:  # internal failure: one line unless --debug
+        if args.debug:
+            raise
+        print(f"upscale: internal error: {type(exc).__name__}: {exc} (rerun with --debug for details)",
+              file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

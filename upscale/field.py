@@ -1,0 +1,301 @@
+"""Fine and coarse field files: schema, reading, validation, unit conversion, writing.
+
+A field is an xarray Dataset on dimensions (x, y, z), z counting layers from the top.
+After :func:`open_field` (or :func:`validate`) a field is *normalised*: sizes are in
+metres, ``dz`` is three-dimensional, ``kx``, ``ky``, ``kz`` (mD), ``porosity``, ``ntg``
+and ``active`` are all present, and inactive cells hold zeros instead of fill values.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from .errors import InputError
+from .units import LENGTH_TO_M, PERMEABILITY_TO_MD
+
+DIMS = ("x", "y", "z")
+PERMEABILITY = ("kx", "ky", "kz")
+CELL_VALUES = PERMEABILITY + ("porosity", "ntg")
+
+
+@dataclass(frozen=True)
+class FineArrays:
+    """A normalised field as plain numpy arrays, shapes (nx, ny, nz) unless noted.
+
+    dx (nx,), dy (ny,), dz: cell sizes in m; kx, ky, kz in mD (inactive cells 0);
+    porosity, ntg fractions; active bool.
+    """
+
+    dx: np.ndarray
+    dy: np.ndarray
+    dz: np.ndarray
+    kx: np.ndarray
+    ky: np.ndarray
+    kz: np.ndarray
+    porosity: np.ndarray
+    ntg: np.ndarray
+    active: np.ndarray
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return self.kx.shape
+
+    @property
+    def bulk_volume(self) -> np.ndarray:
+        """Cell bulk volume, m3."""
+        return self.dx[:, None, None] * self.dy[None, :, None] * self.dz
+
+    @property
+    def pore_volume(self) -> np.ndarray:
+        """Cell pore volume porosity * ntg * bulk volume, m3 (0 in inactive cells)."""
+        return self.porosity * self.ntg * self.bulk_volume * self.active
+
+    def flow_permeability(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Permeability that carries flow, mD: kx*ntg, ky*ntg, kz; 0 in inactive cells."""
+        a = self.active
+        return self.kx * self.ntg * a, self.ky * self.ntg * a, self.kz * a
+
+
+def fine_dataset(kx, ky, kz, porosity, dx, dy, dz, ntg=None, active=None,
+                 length_units: str = "m", attrs: dict | None = None) -> xr.Dataset:
+    """Build a dataset in the fine-field schema from numpy arrays.
+
+    Permeability in mD; dx (nx,), dy (ny,), dz (nz,) or (nx, ny, nz) in ``length_units``.
+    """
+    kx = np.asarray(kx, dtype=float)
+    dz = np.asarray(dz, dtype=float)
+    cell = DIMS
+    data = {
+        "dx": (("x",), np.asarray(dx, dtype=float), {"units": length_units, "long_name": "cell size along x"}),
+        "dy": (("y",), np.asarray(dy, dtype=float), {"units": length_units, "long_name": "cell size along y"}),
+        "dz": (("z",) if dz.ndim == 1 else cell, dz, {"units": length_units, "long_name": "cell thickness"}),
+        "kx": (cell, kx, {"units": "mD", "long_name": "permeability along x"}),
+        "ky": (cell, np.asarray(ky, dtype=float), {"units": "mD", "long_name": "permeability along y"}),
+        "kz": (cell, np.asarray(kz, dtype=float), {"units": "mD", "long_name": "permeability along z"}),
+        "porosity": (cell, np.asarray(porosity, dtype=float), {"units": "1", "long_name": "porosity"}),
+    }
+    if ntg is not None:
+        data["ntg"] = (cell, np.asarray(ntg, dtype=float), {"units": "1", "long_name": "net-to-gross"})
+    if active is not None:
+        data["active"] = (cell, np.asarray(active, dtype=np.int8), {"long_name": "active cell flag"})
+    ds = xr.Dataset({name: xr.Variable(*spec) for name, spec in data.items()})
+    ds.attrs.update({"Conventions": "CF-1.10"}, **(attrs or {}))
+    return ds
+
+
+def file_checksum(path: str | os.PathLike) -> str:
+    """SHA-256 of a file's bytes, hex."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for chunk in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def open_field(path: str | os.PathLike) -> xr.Dataset:
+    """Read and validate a fine (or coarse) field file; returns a normalised Dataset.
+
+    Raises :class:`InputError` naming the variable, the problem and the first bad cell.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: no such file")
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder, expected a NetCDF file")
+    try:
+        with xr.open_dataset(path, engine="netcdf4") as raw:
+            ds = raw.load()
+    except Exception as exc:  # netCDF4 raises OSError, ValueError, RuntimeError...
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise InputError(f"{path}: not a readable NetCDF file ({reason})") from None
+    ds.attrs["source_path"] = str(path.resolve())
+    ds.attrs["source_sha256"] = file_checksum(path)
+    return validate(ds, where=str(path))
+
+
+def _first_index(mask: np.ndarray, dims: tuple[str, ...]) -> str:
+    index = np.argwhere(mask)[0]
+    return "(" + ", ".join(f"{d}={i}" for d, i in zip(dims, index)) + ")"
+
+
+def _refuse(mask: np.ndarray, where: str, name: str, problem: str, dims, fix: str) -> None:
+    """Raise if any cell of ``mask`` is set: count, first index, and a hint."""
+    count = int(np.count_nonzero(mask))
+    if count:
+        raise InputError(f"{where}: variable '{name}' {problem} in {count} cell(s), first at "
+                         f"{_first_index(mask, dims)}; {fix}")
+
+
+def _length_scale(ds: xr.Dataset, name: str, where: str) -> float:
+    units = str(ds[name].attrs.get("units", "m")).strip()
+    scale = LENGTH_TO_M.get(units.lower())
+    if scale is None:
+        raise InputError(f"{where}: variable '{name}' has unknown units '{units}'; use 'm' or 'ft'")
+    return scale
+
+
+def _permeability_scale(ds: xr.Dataset, name: str, where: str) -> float:
+    units = str(ds[name].attrs.get("units", "mD")).strip()
+    scale = PERMEABILITY_TO_MD.get(units.lower())
+    if scale is None:
+        raise InputError(f"{where}: variable '{name}' has unknown units '{units}'; use 'mD'")
+    return scale
+
+
+def _require_dims(ds: xr.Dataset, name: str, allowed: tuple[tuple[str, ...], ...], where: str) -> None:
+    dims = ds[name].dims
+    if dims in allowed:
+        return
+    wanted = " or ".join("(" + ", ".join(a) + ")" for a in allowed)
+    got = "(" + ", ".join(dims) + ")"
+    if any(sorted(dims) == sorted(a) for a in allowed):
+        raise InputError(f"{where}: variable '{name}' has dimension order {got}, expected {wanted}; "
+                         f"transpose it, e.g. ds.transpose('x', 'y', 'z')")
+    raise InputError(f"{where}: variable '{name}' has dimensions {got}, expected {wanted}")
+
+
+def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
+    """Check a dataset against the fine-field schema and return it normalised (see module doc)."""
+    where = ds.attrs.get("source_path", where) if where == "field" else where
+    missing = [n for n in ("dx", "dy", "dz", "porosity") if n not in ds]
+    has_tensor = all(n in ds for n in PERMEABILITY)
+    if not has_tensor and "k" not in ds:
+        present = [n for n in PERMEABILITY if n in ds]
+        missing += [n for n in PERMEABILITY if n not in ds] if present else ["kx, ky, kz (or k)"]
+    if missing:
+        found = ", ".join(sorted(map(str, ds.data_vars))) or "none"
+        raise InputError(f"{where}: missing variable(s) {', '.join(missing)} (found: {found})")
+    for name in DIMS:
+        if name not in ds.dims:
+            raise InputError(f"{where}: missing dimension '{name}' (dimensions are x, y, z)")
+        if ds.sizes[name] == 0:
+            raise InputError(f"{where}: dimension '{name}' has length 0")
+    _require_dims(ds, "dx", (("x",),), where)
+    _require_dims(ds, "dy", (("y",),), where)
+    _require_dims(ds, "dz", (("z",), DIMS), where)
+    k_names = PERMEABILITY if has_tensor else ("k",)
+    optional = [n for n in ("ntg", "active") if n in ds]
+    for name in (*k_names, "porosity", *optional):
+        _require_dims(ds, name, (DIMS,), where)
+
+    shape = tuple(ds.sizes[d] for d in DIMS)
+    sizes = {}
+    for name in ("dx", "dy", "dz"):
+        values = np.asarray(ds[name].values, dtype=float) * _length_scale(ds, name, where)
+        dims = ds[name].dims
+        _refuse(~np.isfinite(values), where, name, "is NaN or infinite", dims, "cell sizes must be finite")
+        if name == "dz":
+            _refuse(values < 0, where, name, "is negative", dims, "thickness must be >= 0 (0 = pinched out)")
+        else:
+            _refuse(values <= 0, where, name, "is zero or negative", dims, "cell sizes must be > 0")
+        sizes[name] = values
+    dz = np.broadcast_to(sizes["dz"], shape).copy()
+
+    active = dz > 0
+    if "active" in ds:
+        flag = np.asarray(ds["active"].values, dtype=float)
+        _refuse(~np.isin(flag, (0.0, 1.0)), where, "active", "is not 0 or 1", DIMS, "use 1 for active, 0 for inactive")
+        active &= flag == 1.0
+    if not active.any():
+        raise InputError(f"{where}: no active cell (all cells pinched out or flagged inactive)")
+
+    values = {}
+    for name in k_names:
+        values[name] = np.asarray(ds[name].values, dtype=float) * _permeability_scale(ds, name, where)
+    values["porosity"] = np.array(ds["porosity"].values, dtype=float)  # a copy: zeroed below
+    values["ntg"] = np.array(ds["ntg"].values, dtype=float) if "ntg" in ds else np.ones(shape)
+    for name, data in values.items():
+        fix = ("flag such cells inactive with an 'active' variable, or fill them" if name != "ntg"
+               else "flag such cells inactive, or fill them")
+        _refuse(active & ~np.isfinite(data), where, name, "is NaN or infinite in active cells", DIMS, fix)
+        _refuse(active & (data < 0), where, name, "is negative in active cells", DIMS,
+                "permeability and fractions must be >= 0")
+        if name in ("porosity", "ntg"):
+            _refuse(active & (data > 1), where, name, "is above 1 in active cells", DIMS,
+                    "give fractions (0..1), not percent")
+        data[~active] = 0.0
+    if not has_tensor:
+        values.update(kx=values["k"], ky=values["k"].copy(), kz=values["k"].copy())
+
+    cell = DIMS
+    out = xr.Dataset(
+        {
+            "dx": (("x",), sizes["dx"], {"units": "m"}),
+            "dy": (("y",), sizes["dy"], {"units": "m"}),
+            "dz": (cell, dz, {"units": "m"}),
+            **{n: (cell, values[n], {"units": "mD"}) for n in PERMEABILITY},
+            "porosity": (cell, values["porosity"], {"units": "1"}),
+            "ntg": (cell, values["ntg"], {"units": "1"}),
+            "active": (cell, active.astype(np.int8), {}),
+        },
+        attrs=dict(ds.attrs),
+    )
+    for name in ds.data_vars:
+        if name not in out and name != "k":
+            out[name] = ds[name]  # carried along unchanged: coarse-file extras such as tx, x_start
+    out.attrs["length_units_in"] = str(ds["dx"].attrs.get("units", "m"))
+    return out
+
+
+def arrays(ds: xr.Dataset) -> FineArrays:
+    """The numpy arrays of a normalised field (see :func:`validate`)."""
+    return FineArrays(
+        dx=np.asarray(ds["dx"].values, dtype=float),
+        dy=np.asarray(ds["dy"].values, dtype=float),
+        dz=np.asarray(ds["dz"].values, dtype=float),
+        kx=np.asarray(ds["kx"].values, dtype=float),
+        ky=np.asarray(ds["ky"].values, dtype=float),
+        kz=np.asarray(ds["kz"].values, dtype=float),
+        porosity=np.asarray(ds["porosity"].values, dtype=float),
+        ntg=np.asarray(ds["ntg"].values, dtype=float),
+        active=np.asarray(ds["active"].values).astype(bool),
+    )
+
+
+def check_output_path(path: str | os.PathLike, inputs: tuple = ()) -> Path:
+    """Refuse an output path whose folder is missing or that names one of the inputs."""
+    path = Path(path)
+    if not path.parent.resolve().is_dir():
+        raise InputError(f"{path}: output folder '{path.parent}' does not exist; create it first")
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder; give a file name for the output")
+    for source in inputs:
+        if source and path.resolve() == Path(source).resolve():
+            raise InputError(f"{path}: output would overwrite the input file; choose another name")
+    return path
+
+
+def atomic_write(path: str | os.PathLike, write_to) -> Path:
+    """Call ``write_to(temporary_path)`` next to ``path`` and rename it into place when complete."""
+    path = Path(path)
+    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+    os.close(handle)
+    try:
+        write_to(temporary)
+        os.replace(temporary, path)
+    except BaseException:
+        if os.path.exists(temporary):
+            os.unlink(temporary)
+        raise
+    return path
+
+
+def write(ds: xr.Dataset, path: str | os.PathLike) -> Path:
+    """Write a field atomically to NetCDF; refuses to write over the file it came from."""
+    sources = (ds.attrs.get("source_path"), ds.attrs.get("input_file"))
+    path = check_output_path(path, inputs=sources)
+    for name in PERMEABILITY:
+        if name in ds:
+            data = np.asarray(ds[name].values)
+            active = np.asarray(ds["active"].values).astype(bool) if "active" in ds else np.ones(data.shape, bool)
+            _refuse(active & ~(np.isfinite(data) & (data >= 0)), str(path), name,
+                    "would be NaN, infinite or negative", DIMS, "this is a bug: please report it")
+    encoding = {name: {"zlib": True, "complevel": 1} for name in ds.data_vars}
+    return atomic_write(path, lambda tmp: ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding))

@@ -1,0 +1,201 @@
+"""Coarse partitions of a fine grid: uniform ratios or explicit fine-index edges per axis.
+
+A partition holds, per axis, the fine-index edges of the coarse blocks: block ``I`` on
+axis ``a`` covers fine cells ``edges[a][I] <= i < edges[a][I + 1]``. Reductions over
+blocks use ``np.add.reduceat`` (no Python loop over blocks); blocks of equal shape are
+gathered into one batch for the local flow solves.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from itertools import product
+
+import numpy as np
+
+from .errors import InputError
+
+AXES = ("x", "y", "z")
+
+
+@dataclass(frozen=True)
+class Partition:
+    """Fine-index edges per axis (each starts at 0 and ends at the fine size)."""
+
+    edges: tuple[np.ndarray, np.ndarray, np.ndarray]
+    ratio: tuple[int | None, int | None, int | None] = (None, None, None)
+
+    @property
+    def fine_shape(self) -> tuple[int, int, int]:
+        return tuple(int(e[-1]) for e in self.edges)
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return tuple(len(e) - 1 for e in self.edges)
+
+    def sizes(self, axis: int) -> np.ndarray:
+        """Number of fine cells in each block along ``axis``."""
+        return np.diff(self.edges[axis])
+
+    def describe(self) -> dict[str, str]:
+        """Human-readable ratio or edges per axis, with any remainder block stated."""
+        out = {}
+        for axis, name in enumerate(AXES):
+            sizes = self.sizes(axis)
+            ratio = self.ratio[axis]
+            if ratio is not None:
+                text = f"ratio {ratio}"
+                if sizes[-1] != ratio:
+                    text += f" (last block has {sizes[-1]} cells: remainder)"
+            else:
+                text = "edges " + " ".join(str(int(e)) for e in self.edges[axis])
+            out[name] = text
+        return out
+
+    def block_sum(self, values: np.ndarray) -> np.ndarray:
+        """Sum of a fine (nx, ny, nz) array over each coarse block."""
+        out = np.asarray(values, dtype=float)
+        for axis in range(3):
+            out = np.add.reduceat(out, self.edges[axis][:-1], axis=axis)
+        return out
+
+    def line_sum(self, values: np.ndarray, axis: int) -> np.ndarray:
+        """Sum over blocks along ``axis`` only: shape coarse on ``axis``, fine on the others."""
+        return np.add.reduceat(np.asarray(values, dtype=float), self.edges[axis][:-1], axis=axis)
+
+    def cross_sum(self, values: np.ndarray, axis: int) -> np.ndarray:
+        """Sum over blocks on the two axes other than ``axis`` (fine along ``axis``)."""
+        out = np.asarray(values, dtype=float)
+        for other in range(3):
+            if other != axis:
+                out = np.add.reduceat(out, self.edges[other][:-1], axis=other)
+        return out
+
+    def expand(self, coarse: np.ndarray) -> np.ndarray:
+        """Repeat a coarse (NX, NY, NZ) array onto the fine grid."""
+        out = np.asarray(coarse)
+        for axis in range(3):
+            out = np.repeat(out, self.sizes(axis), axis=axis)
+        return out
+
+
+def _check_ratio(ratio, shape) -> tuple[int, int, int]:
+    if len(ratio) != 3:
+        raise InputError(f"ratio must have three values (x, y, z), got {len(ratio)}")
+    out = []
+    for name, r, n in zip(AXES, ratio, shape):
+        if int(r) != r or r <= 0:
+            raise InputError(f"ratio along {name} is {r}; it must be a whole number >= 1")
+        if r > n:
+            raise InputError(f"ratio along {name} is {r}, larger than the grid ({n} cells along {name})")
+        out.append(int(r))
+    return tuple(out)
+
+
+def _check_edges(name: str, edges, n: int) -> np.ndarray:
+    values = np.asarray(list(edges), dtype=float)
+    if values.size == 0 or not np.all(values == np.round(values)):
+        raise InputError(f"edges along {name} must be whole fine-cell indices, got {list(edges)}")
+    values = values.astype(int)
+    if values.min() < 0 or values.max() > n:
+        raise InputError(f"edges along {name} must lie in 0..{n}, got {values.tolist()}")
+    if np.any(np.diff(values) <= 0):
+        raise InputError(f"edges along {name} must be strictly increasing, got {values.tolist()}")
+    if values[0] != 0:
+        values = np.concatenate([[0], values])
+    if values[-1] != n:
+        values = np.concatenate([values, [n]])
+    return values
+
+
+def make_partition(shape, ratio=None, edges: dict | None = None) -> Partition:
+    """Partition a fine grid of ``shape`` by ``ratio`` (rx, ry, rz), by ``edges``, or both.
+
+    ``edges`` maps an axis name to fine-index edges, e.g. ``{"z": [0, 3, 10, 20]}``; 0 and
+    the fine size are added when missing. Axes without edges use the ratio (1 if none).
+    A ratio that does not divide the size leaves a smaller last block.
+    """
+    shape = tuple(int(n) for n in shape)
+    edges = dict(edges or {})
+    unknown = set(edges) - set(AXES)
+    if unknown:
+        raise InputError(f"edges given for unknown axis {sorted(unknown)}; use x, y or z")
+    ratio = _check_ratio(ratio if ratio is not None else (1, 1, 1), shape)
+    out, used = [], []
+    for axis, name in enumerate(AXES):
+        if name in edges:
+            out.append(_check_edges(name, edges[name], shape[axis]))
+            used.append(None)
+        else:
+            out.append(np.unique(np.append(np.arange(0, shape[axis], ratio[axis]), shape[axis])))
+            used.append(ratio[axis])
+    return Partition(edges=tuple(out), ratio=tuple(used))
+
+
+@dataclass(frozen=True)
+class BlockGroup:
+    """Coarse blocks that share one local-problem shape, for a batched solve.
+
+    ``blocks[a]`` are the coarse indices along axis a (the group is their outer product);
+    ``starts[a]`` the fine index where each block's local domain starts; ``shape`` the
+    local domain shape (block plus border, clipped at the model edge); ``target`` the
+    slice of the local domain that is the block itself.
+    """
+
+    blocks: tuple[np.ndarray, np.ndarray, np.ndarray]
+    starts: tuple[np.ndarray, np.ndarray, np.ndarray]
+    shape: tuple[int, int, int]
+    target: tuple[slice, slice, slice]
+
+    @property
+    def count(self) -> int:
+        return int(np.prod([len(b) for b in self.blocks]))
+
+    def gather(self, values: np.ndarray) -> np.ndarray:
+        """Local-domain copies of a fine array: shape (count, *shape)."""
+        index = [s[:, None] + np.arange(n)[None, :] for s, n in zip(self.starts, self.shape)]
+        ix, iy, iz = index
+        out = values[ix[:, None, None, :, None, None], iy[None, :, None, None, :, None],
+                     iz[None, None, :, None, None, :]]
+        return out.reshape((self.count,) + self.shape)
+
+    def scatter(self, coarse: np.ndarray, results: np.ndarray) -> None:
+        """Write per-block ``results`` (count, ...) into a coarse (NX, NY, NZ, ...) array."""
+        bx, by, bz = self.blocks
+        shaped = results.reshape((len(bx), len(by), len(bz)) + results.shape[1:])
+        coarse[np.ix_(bx, by, bz)] = shaped
+
+
+def block_groups(partition: Partition, border: int = 0, extend: tuple[int, int, int] = (0, 0, 0),
+                 only: tuple[np.ndarray | None, ...] = (None, None, None)) -> list[BlockGroup]:
+    """Group blocks by the shape of their local domain.
+
+    The local domain of block I along an axis is [edge[I] - border, edge[I + 1 + extend] + border),
+    clipped to the grid; ``extend`` joins the next block(s) (for face problems); ``only``
+    restricts the coarse indices considered per axis.
+    """
+    if border < 0 or int(border) != border:
+        raise InputError(f"border must be a whole number of fine cells >= 0, got {border}")
+    per_axis = []
+    for axis in range(3):
+        e = partition.edges[axis]
+        n = int(e[-1])
+        nblocks = len(e) - 1 - extend[axis]
+        index = np.arange(nblocks) if only[axis] is None else np.asarray(only[axis])
+        lo = e[index]
+        hi = e[index + 1 + extend[axis]]
+        start = np.maximum(lo - border, 0)
+        stop = np.minimum(hi + border, n)
+        key = np.stack([stop - start, lo - start, e[index + 1] - lo], axis=1)
+        classes = {}
+        for k in np.unique(key, axis=0):
+            members = np.flatnonzero(np.all(key == k, axis=1))
+            classes[tuple(int(v) for v in k)] = (index[members], start[members])
+        per_axis.append(classes)
+    groups = []
+    for (kx, (bx, sx)), (ky, (by, sy)), (kz, (bz, sz)) in product(*(c.items() for c in per_axis)):
+        keys = (kx, ky, kz)
+        groups.append(BlockGroup(
+            blocks=(bx, by, bz), starts=(sx, sy, sz), shape=tuple(k[0] for k in keys),
+            target=tuple(slice(k[1], k[1] + k[2]) for k in keys)))
+    return groups
