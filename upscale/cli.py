@@ -9,6 +9,9 @@ import logging
 import sys
 import textwrap
 from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
 
 from .errors import InputError
 from .version import tool_version
@@ -79,6 +82,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--bc", default="sealed", help="local boundary condition for flow: sealed, periodic, linear")
     p.add_argument("--border", type=int, default=0, help="border ring of fine cells around each block (flow)")
     p.add_argument("--multipliers", action="store_true", help="compute flow-based transmissibility multipliers")
+    p.add_argument("--multipliers-csv", metavar="FILE", help="also write all multipliers as CSV (i,j,k,direction,multiplier)")
     p.add_argument("--units", default="metric", help="transmissibility units: metric or field")
 
     p = _add(sub, "inspect", "summarise a field file: sizes, value ranges, heterogeneity")
@@ -140,17 +144,28 @@ def _coarsen(args) -> int:
     from .partition import make_partition
 
     out = check_output_path(args.output, inputs=(args.fine,))
+    table = check_output_path(args.multipliers_csv, inputs=(args.fine, args.output)) if args.multipliers_csv else None
+    if table and not args.multipliers:
+        raise InputError("--multipliers-csv needs --multipliers")
     fine = open_field(args.fine)
     edges = dict(args.edges)
     shape = tuple(fine.sizes[d] for d in ("x", "y", "z"))
-    blocks = 1
-    for n in make_partition(shape, args.ratio, edges).shape:
-        blocks *= n
-    with progress_bar(blocks, "local solves", args.quiet) as update:
+    coarse_shape = make_partition(shape, args.ratio, edges).shape
+    work = int(np.prod(coarse_shape)) if "flow" in args.method else 0
+    if args.multipliers:
+        work += sum(int(np.prod(coarse_shape)) * (n - 1) // n for n in coarse_shape)
+    with progress_bar(work, "local solves", args.quiet) as update:
         coarse = coarsen(fine, ratio=args.ratio, edges=edges, method=args.method, bc=args.bc,
                          border=args.border, omega=args.omega, multipliers=args.multipliers,
                          units=args.units, progress=update)
     write(coarse, out)
+    if table:
+        from .field import atomic_write
+        from .transmissibility import multiplier_csv
+
+        text = multiplier_csv({n: coarse[f"t{n}_multiplier"].values for n in "xyz"})
+        atomic_write(table, lambda tmp: Path(tmp).write_text(text))
+        print(f"wrote {table}")
     print(f"wrote {out} ({' x '.join(str(coarse.sizes[d]) for d in ('x', 'y', 'z'))} cells, "
           f"method {coarse.attrs['method']})")
     return 0

@@ -18,7 +18,7 @@ from .field import FineArrays, arrays, validate
 from .local import BOUNDARY_CONDITIONS, flow_tensors
 from .partition import AXES, Partition, make_partition
 from .static import STATIC_METHODS, block_length, cardwell_parsons, static_average
-from .transmissibility import coarse_transmissibility, unit_system
+from .transmissibility import coarse_transmissibility, flow_transmissibility, multipliers as face_multipliers, unit_system
 from .version import tool_version
 
 log = logging.getLogger(__name__)
@@ -113,6 +113,18 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
         worst = float(flow.residual.max(initial=0.0))
         if worst > 1e-10:
             log.warning("largest relative residual of the local solves is %.2e (> 1e-10)", worst)
+    if multipliers:
+        flow_faces, residuals = flow_transmissibility(cells, partition, border=int(border), units=units,
+                                                      progress=progress)
+        for axis, name in enumerate(AXES):
+            t_name = f"t{name}"
+            ratio_values = face_multipliers(flow_faces[axis], coarse[t_name].values)
+            coarse[f"{t_name}_multiplier"] = (coarse[t_name].dims, ratio_values, {
+                "units": "1", "long_name": f"flow-based transmissibility multiplier on {name} faces",
+                "computed": "flow-based: two-block local solve, relative to the written permeability"})
+            worst = float(residuals[axis].max(initial=0.0))
+            if worst > 1e-10:
+                log.warning("largest relative residual of the %s face solves is %.2e (> 1e-10)", name, worst)
     coarse.attrs.update(_provenance(fine, partition, methods, bc if flow is not None else "none",
                                     border, omega, units))
     return coarse
@@ -169,7 +181,7 @@ def _dataset(cells: FineArrays, partition: Partition, volumes, effective, full: 
                             f"transmissibility between coarse cells i and i+1 along {name}"})
         data[f"t{name}_multiplier"] = (dims, np.ones_like(faces[axis]), {
             "units": "1", "long_name": f"transmissibility multiplier on {name} faces",
-            "computed": "no: all 1; request flow-based multipliers to compute them"})
+            "computed": "no: all 1; request flow-based multipliers (multipliers=True) to compute them"})
     return xr.Dataset({n: xr.Variable(*spec) for n, spec in data.items()})
 
 

@@ -302,44 +302,89 @@ def _block_lengths(domain: LocalDomain) -> np.ndarray:
     return np.stack([lx, ly, lz], axis=1)
 
 
+@dataclass
+class Solved:
+    """Pressures of one system for each case (nb, sx, sy, sz), the Dirichlet-touch and
+    boundary-connected cell masks, and the relative residual per domain (nb,)."""
+
+    pressures: list[np.ndarray]
+    touch: np.ndarray
+    connected: np.ndarray
+    residual: np.ndarray
+
+
+class LocalProblem:
+    """Transmissibilities, connectivity and band ordering of a batch of local domains,
+    shared by the systems (boundary conditions) solved on it."""
+
+    def __init__(self, domain: LocalDomain, periodic: bool):
+        self.domain = domain
+        nb, shape = domain.count, domain.shape
+        self.n = int(np.prod(shape))
+        self.couplings = _couplings(domain, periodic)
+        self.first, self.second, self.values = _pattern(shape, self.couplings)
+        self.labels = _components(self.first, self.second, self.values, nb, self.n)
+        self.coupling_sum = _coupling_sum(domain, self.couplings)
+        self.pos, self.width = _band_order(shape, periodic)
+
+    def solve(self, boundary: Boundary, bc: str, cases: tuple[int, ...]) -> Solved:
+        """Solve one system for the unit-gradient cases along the given axes."""
+        domain, pos, n = self.domain, self.pos, self.n
+        nb = domain.count
+        diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.labels)
+        banded_diag = np.empty((nb, n))
+        banded_diag[:, pos] = diag.reshape(nb, n)
+        rhs = np.zeros((nb, len(cases), n))
+        for column, case in enumerate(cases):
+            rhs[:, column, pos] = _right_hand_side(domain, self.couplings, boundary, bc, case).reshape(nb, n)
+        solution, residual = solve_batch(pos[self.first], pos[self.second], self.values, banded_diag, rhs,
+                                         self.width)
+        pressures = [solution[:, column, pos].reshape((nb,) + domain.shape) for column in range(len(cases))]
+        return Solved(pressures, touch, connected, residual)
+
+    def inflow(self, p: np.ndarray, d: int) -> np.ndarray:
+        """Rate entering through the d- face at unit boundary pressure (mD*m per domain)."""
+        h = _take(self.couplings.half[d], d, 0)
+        return (h * (1.0 - _take(p, d, 0))).reshape(self.domain.count, -1).sum(axis=1)
+
+    def connected_through(self, touch: np.ndarray, d: int) -> np.ndarray:
+        """Per domain: does a connected path join the two Dirichlet faces normal to d?"""
+        return _connected_through(touch, self.labels, d)
+
+
+def sealed_boundary(d: int) -> Boundary:
+    """Unit pressure drop between the two faces normal to axis d, no flow elsewhere."""
+    return Boundary(tuple("dirichlet" if a == d else "noflow" for a in range(3)))
+
+
 def solve_domains(domain: LocalDomain, bc: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Effective tensors (nb, 3, 3) in mD, residuals (nb,) and asymmetry (nb,) for a batch."""
     if bc not in BOUNDARY_CONDITIONS:
         raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
-    nb, shape = domain.count, domain.shape
-    n = int(np.prod(shape))
+    nb = domain.count
     periodic = bc == "periodic"
-    couplings = _couplings(domain, periodic)
-    first, second, values = _pattern(shape, couplings)
-    labels = _components(first, second, values, nb, n)
-    coupling_sum = _coupling_sum(domain, couplings)
-    pos, width = _band_order(shape, periodic)
+    problem = LocalProblem(domain, periodic)
     if bc == "sealed":
-        systems = [(Boundary(tuple("dirichlet" if a == d else "noflow" for a in range(3))), (d,))
-                   for d in range(3)]
+        systems = [(sealed_boundary(d), (d,)) for d in range(3)]
     else:
         systems = [(Boundary(("periodic" if periodic else "dirichlet",) * 3), (0, 1, 2))]
     velocity = np.zeros((nb, 3, 3))
     gradient = np.zeros((nb, 3, 3))
     residual = np.zeros(nb)
     for boundary, cases in systems:
-        diag, touch, connected = _diagonal(domain, couplings, coupling_sum, boundary, labels)
-        banded_diag = np.empty((nb, n))
-        banded_diag[:, pos] = diag.reshape(nb, n)
-        rhs = np.zeros((nb, len(cases), n))
-        for column, case in enumerate(cases):
-            rhs[:, column, pos] = _right_hand_side(domain, couplings, boundary, bc, case).reshape(nb, n)
-        solution, relative = solve_batch(pos[first], pos[second], values, banded_diag, rhs, width)
-        residual = np.maximum(residual, relative)
-        for column, case in enumerate(cases):
-            p = solution[:, column, pos].reshape((nb,) + shape)
-            if bc == "sealed" and not domain.bordered:
-                _sealed_unbordered(domain, couplings, p, touch, labels, case, velocity, gradient)
-                continue
-            fluxes, pressures = _face_values(domain, couplings, p, boundary, bc, case)
-            velocity[:, :, case], gradient[:, :, case] = _target_averages(domain, fluxes, pressures, connected)
+        solved = problem.solve(boundary, bc, cases)
+        residual = np.maximum(residual, solved.residual)
+        for case, p in zip(cases, solved.pressures):
             if bc == "sealed":
-                velocity[~_connected_through(touch, labels, case), :, case] = 0.0
+                through = problem.connected_through(solved.touch, case)
+                if not domain.bordered:
+                    _sealed_unbordered(domain, problem.inflow(p, case), through, case, velocity, gradient)
+                    continue
+            fluxes, pressures = _face_values(domain, problem.couplings, p, boundary, bc, case)
+            velocity[:, :, case], gradient[:, :, case] = _target_averages(domain, fluxes, pressures,
+                                                                          solved.connected)
+            if bc == "sealed":
+                velocity[~through, :, case] = 0.0
     return _tensor(domain, bc, velocity, gradient, residual)
 
 
@@ -374,15 +419,13 @@ def _connected_through(touch, labels, d: int) -> np.ndarray:
     return (reach_in & reach_out)[labels].reshape(nb, -1).any(axis=1)
 
 
-def _sealed_unbordered(domain, couplings: Couplings, p, touch, labels, d, velocity, gradient):
+def _sealed_unbordered(domain, q, through, d, velocity, gradient):
     """Sealed block without border: k = Q L^2 / (V dP) from the inflow Q at unit drop,
     exactly 0 without a connected path (stored as velocity Q L / V, gradient -1 / L)."""
     nb = domain.count
-    h = _take(couplings.half[d], d, 0)
-    q = (h * (1.0 - _take(p, d, 0))).reshape(nb, -1).sum(axis=1)
     length = _block_lengths(domain)[:, d]
     v = domain.volume.reshape(nb, -1).sum(axis=1)
-    through = _connected_through(touch, labels, d) & (v > 0) & (length > 0)
+    through = through & (v > 0) & (length > 0)
     velocity[:, d, d] = np.divide(q * length, v, out=np.zeros(nb), where=through)
     gradient[:, d, d] = -np.divide(1.0, length, out=np.ones(nb), where=through)
 
@@ -420,7 +463,19 @@ def _batches(group: BlockGroup, budget: int):
         sl = slice(start, start + step)
         yield BlockGroup(blocks=(group.blocks[0][sl],) + group.blocks[1:],
                          starts=(group.starts[0][sl],) + group.starts[1:],
-                         shape=group.shape, target=group.target)
+                         shape=group.shape, target=group.target, neighbour=group.neighbour)
+
+
+def local_domains(fine: FineArrays, partition: Partition, border: int = 0, extend=(0, 0, 0),
+                  budget: int = BATCH_BYTES):
+    """Yield (batch, LocalDomain) for every block (extended by ``extend`` blocks per axis)."""
+    k = fine.flow_permeability()
+    lengths = (np.broadcast_to(fine.dx[:, None, None], fine.shape),
+               np.broadcast_to(fine.dy[None, :, None], fine.shape), fine.dz)
+    for group in block_groups(partition, border, extend):
+        for batch in _batches(group, budget):
+            yield batch, LocalDomain(k=tuple(batch.gather(a) for a in k),
+                                     lengths=tuple(batch.gather(a) for a in lengths), target=batch.target)
 
 
 def flow_tensors(fine: FineArrays, partition: Partition, bc: str = "sealed", border: int = 0,
@@ -432,24 +487,17 @@ def flow_tensors(fine: FineArrays, partition: Partition, bc: str = "sealed", bor
     """
     if bc not in BOUNDARY_CONDITIONS:
         raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
-    k = fine.flow_permeability()
-    lengths = (np.broadcast_to(fine.dx[:, None, None], fine.shape),
-               np.broadcast_to(fine.dy[None, :, None], fine.shape), fine.dz)
     shape = partition.shape
     tensor = np.zeros(shape + (3, 3))
     residual = np.zeros(shape)
     asymmetry = np.zeros(shape)
-    for group in block_groups(partition, border):
-        for batch in _batches(group, budget):
-            domain = LocalDomain(k=tuple(batch.gather(a) for a in k),
-                                 lengths=tuple(batch.gather(a) for a in lengths),
-                                 target=batch.target)
-            t, r, s = solve_domains(domain, bc)
-            batch.scatter(tensor, t)
-            batch.scatter(residual, r)
-            batch.scatter(asymmetry, s)
-            if progress is not None:
-                progress(batch.count)
+    for batch, domain in local_domains(fine, partition, border, budget=budget):
+        t, r, s = solve_domains(domain, bc)
+        batch.scatter(tensor, t)
+        batch.scatter(residual, r)
+        batch.scatter(asymmetry, s)
+        if progress is not None:
+            progress(batch.count)
     active = partition.block_sum(fine.active) > 0
     tensor[~active] = 0.0
     return FlowResult(tensor=tensor, residual=residual, asymmetry=asymmetry)

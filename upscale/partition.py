@@ -139,13 +139,15 @@ class BlockGroup:
     ``blocks[a]`` are the coarse indices along axis a (the group is their outer product);
     ``starts[a]`` the fine index where each block's local domain starts; ``shape`` the
     local domain shape (block plus border, clipped at the model edge); ``target`` the
-    slice of the local domain that is the block itself.
+    slice of the local domain that is the block itself; ``neighbour`` the slice of the
+    block(s) joined after it (empty unless the domain was extended).
     """
 
     blocks: tuple[np.ndarray, np.ndarray, np.ndarray]
     starts: tuple[np.ndarray, np.ndarray, np.ndarray]
     shape: tuple[int, int, int]
     target: tuple[slice, slice, slice]
+    neighbour: tuple[slice, slice, slice]
 
     @property
     def count(self) -> int:
@@ -186,7 +188,7 @@ def block_groups(partition: Partition, border: int = 0, extend: tuple[int, int, 
         hi = e[index + 1 + extend[axis]]
         start = np.maximum(lo - border, 0)
         stop = np.minimum(hi + border, n)
-        key = np.stack([stop - start, lo - start, e[index + 1] - lo], axis=1)
+        key = np.stack([stop - start, lo - start, e[index + 1] - lo, hi - e[index + 1]], axis=1)
         classes = {}
         for k in np.unique(key, axis=0):
             members = np.flatnonzero(np.all(key == k, axis=1))
@@ -197,5 +199,6 @@ def block_groups(partition: Partition, border: int = 0, extend: tuple[int, int, 
         keys = (kx, ky, kz)
         groups.append(BlockGroup(
             blocks=(bx, by, bz), starts=(sx, sy, sz), shape=tuple(k[0] for k in keys),
-            target=tuple(slice(k[1], k[1] + k[2]) for k in keys)))
+            target=tuple(slice(k[1], k[1] + k[2]) for k in keys),
+            neighbour=tuple(slice(k[1] + k[2], k[1] + k[2] + k[3]) for k in keys)))
     return groups

@@ -1,0 +1,94 @@
+"""Coarse transmissibilities and flow-based multipliers."""
+
+import numpy as np
+import pytest
+
+from helpers import lognormal
+from upscale import coarsen
+from upscale.field import fine_dataset
+from upscale.transmissibility import barrier_summary, multiplier_csv
+from upscale.units import FIELD_TRANSMISSIBILITY, FOOT_M, METRIC_TRANSMISSIBILITY
+
+
+def _dataset(k, dx, dy, dz, kz=None):
+    kz = k if kz is None else kz
+    return fine_dataset(k, k, kz, np.full(k.shape, 0.2), dx, dy, dz)
+
+
+def test_homogeneous_transmissibility_and_unit_multipliers():
+    # Two-point flux between coarse centres: T = C k A / L (common practice, no single source).
+    k = np.full((6, 4, 6), 50.0)
+    dx, dy, dz = np.full(6, 10.0), np.full(4, 20.0), np.full(6, 2.0)
+    coarse = coarsen(_dataset(k, dx, dy, dz), ratio=(2, 2, 3), method="flow", multipliers=True)
+    c = METRIC_TRANSMISSIBILITY
+    assert coarse.tx.values == pytest.approx(c * 50.0 * (40.0 * 6.0) / 20.0, rel=1e-12)
+    assert coarse.ty.values == pytest.approx(c * 50.0 * (20.0 * 6.0) / 40.0, rel=1e-12)
+    assert coarse.tz.values == pytest.approx(c * 50.0 * (20.0 * 40.0) / 6.0, rel=1e-12)
+    for name in "xyz":
+        np.testing.assert_allclose(coarse[f"t{name}_multiplier"].values, 1.0, rtol=1e-10)
+    assert coarse.tx.dims == ("x_face", "y", "z") and coarse.tx.sizes["x_face"] == 2
+    assert coarse.tz.attrs["units"] == "m3*cP/(day*bar)"
+
+
+def test_field_units():
+    # rb cP/(day psi) with the constant 0.001127 for mD and ft (Ertekin, Abou-Kassem & King 2001).
+    k = np.full((4, 2, 2), 10.0)
+    dx, dy, dz = np.full(4, 30.48), np.full(2, 30.48), np.full(2, 3.048)  # 100 ft, 100 ft, 10 ft
+    coarse = coarsen(_dataset(k, dx, dy, dz), ratio=(2, 2, 2), method="arithmetic", units="field")
+    area_ft2, length_ft = 200.0 * 20.0, 200.0
+    assert coarse.tx.values == pytest.approx(FIELD_TRANSMISSIBILITY * 10.0 * area_ft2 / length_ft, rel=1e-10)
+    assert FIELD_TRANSMISSIBILITY * 10.0 * area_ft2 / length_ft == pytest.approx(0.001127 * 200.0, rel=1e-3)
+    assert coarse.tx.attrs["units"] == "rb*cP/(day*psi)"
+    assert FOOT_M == 0.3048
+
+
+def test_thin_barrier_inside_a_block_matches_series_resistance():
+    # A column of layers, two coarse blocks of five layers; a thin 0.01 mD streak in the
+    # upper one. The two-block face problem is one-dimensional: its rate is the series
+    # resistance result and the pressure profile is linear in cumulative resistance, so
+    # T_flow = C Q / (p1 - p2) is computed here independently.
+    dz = np.array([1.0, 2.0, 0.5, 0.2, 1.5, 1.0, 1.0, 2.0, 0.8, 1.2])
+    kz_layer = np.array([100.0, 80.0, 120.0, 0.01, 90.0, 60.0, 70.0, 50.0, 65.0, 75.0])
+    k = np.broadcast_to(np.full(10, 100.0), (3, 2, 10)).copy()
+    kz = np.broadcast_to(kz_layer, (3, 2, 10)).copy()
+    dx, dy = np.full(3, 10.0), np.full(2, 10.0)
+    coarse = coarsen(_dataset(k, dx, dy, dz, kz=kz), ratio=(3, 2, 5), method="arithmetic", multipliers=True)
+    area = 30.0 * 20.0
+    resistance = dz / (kz_layer * area)              # per cell, mD*m units
+    rate = 1.0 / resistance.sum()
+    faces = np.concatenate([[0.0], np.cumsum(resistance)])
+    centre = 1.0 - rate * 0.5 * (faces[:-1] + faces[1:])   # cell-centre pressures
+    p1 = (dz[:5] * centre[:5]).sum() / dz[:5].sum()
+    p2 = (dz[5:] * centre[5:]).sum() / dz[5:].sum()
+    t_flow = METRIC_TRANSMISSIBILITY * rate / (p1 - p2)
+    # transmissibility from the arithmetic kz of each block, half-cell harmonic
+    k1, k2 = (dz[:5] * kz_layer[:5]).sum() / dz[:5].sum(), (dz[5:] * kz_layer[5:]).sum() / dz[5:].sum()
+    h1, h2 = k1 * area / (dz[:5].sum() / 2), k2 * area / (dz[5:].sum() / 2)
+    t_k = METRIC_TRANSMISSIBILITY * h1 * h2 / (h1 + h2)
+    assert float(coarse.tz[0, 0, 0]) == pytest.approx(t_k, rel=1e-10)
+    assert float(coarse.tz_multiplier[0, 0, 0]) == pytest.approx(t_flow / t_k, rel=1e-9)
+    assert float(coarse.tz_multiplier[0, 0, 0]) < 0.1      # the streak shows up as a barrier
+    summary = barrier_summary({n: coarse[f"t{n}_multiplier"].values for n in "xyz"})
+    assert summary["z"]["below"] == 1 and summary["x"]["below"] == 0
+
+
+def test_sealed_face_gives_exact_zero_and_closed_faces_stay_one():
+    k = lognormal((4, 3, 4), 1.0, 2)
+    k[:, :, 1] = 0.0  # a sealing layer inside the upper block: no path across the z face
+    kz = k.copy()
+    coarse = coarsen(_dataset(k, np.ones(4), np.ones(3), np.ones(4), kz=kz), ratio=(4, 3, 2),
+                     method="arithmetic", multipliers=True)
+    assert float(coarse.tz_multiplier[0, 0, 0]) == 0.0
+    assert float(coarse.tz[0, 0, 0]) > 0   # the arithmetic average hides the seal
+    active = np.ones((4, 3, 4), dtype=np.int8)
+    active[2:, :, :] = 0
+    ds = fine_dataset(k + 1, k + 1, k + 1, np.full(k.shape, 0.2), np.ones(4), np.ones(3), np.ones(4), active=active)
+    coarse = coarsen(ds, ratio=(2, 3, 4), method="arithmetic", multipliers=True)
+    assert float(coarse.tx[0, 0, 0]) == 0.0 and float(coarse.tx_multiplier[0, 0, 0]) == 1.0
+
+
+def test_multiplier_csv_columns():
+    m = {"x": np.array([[[0.5]]]), "y": np.zeros((1, 0, 1)), "z": np.array([[[1.0, 0.0]]])}
+    lines = multiplier_csv(m).splitlines()
+    assert lines[0] == "i,j,k,direction,multiplier"
+    assert lines[1:] == ["0,0,0,x,0.5", "0,0,0,z,1", "0,0,1,z,0"]
