@@ -8,6 +8,7 @@ m3*cP/(day*bar) (metric) or mD*ft to rb*cP/(day*psi) (field); see :mod:`upscale.
 from __future__ import annotations
 
 import numpy as np
+import xarray as xr
 
 from .errors import InputError
 from .field import FineArrays
@@ -15,6 +16,7 @@ from .local import LocalProblem, local_domains, sealed_boundary
 from .partition import Partition
 from .tpfa import transmissibilities
 from .units import TRANSMISSIBILITY_UNITS
+from .partition import AXES
 
 
 def unit_system(units: str) -> tuple[str, float, float]:
@@ -112,3 +114,48 @@ def multiplier_csv(face_multipliers: dict[str, np.ndarray]) -> str:
         index = np.indices(m.shape).reshape(3, -1).T
         lines += [f"{i},{j},{k},{name},{v:.9g}" for (i, j, k), v in zip(index.tolist(), m.ravel().tolist())]
     return "\n".join(lines) + "\n"
+
+
+def coarse_units(coarse: xr.Dataset) -> str:
+    """The transmissibility unit system (metric or field) of a coarse file."""
+    units = coarse.attrs.get("transmissibility_units")
+    if units is None and "tx" in coarse:
+        written = str(coarse["tx"].attrs.get("units", ""))
+        units = next((name for name, spec in TRANSMISSIBILITY_UNITS.items() if spec[0] == written), None)
+    if units not in TRANSMISSIBILITY_UNITS:
+        raise InputError(f"coarse grid: transmissibility units {units!r} are not known; "
+                         f"set attribute 'transmissibility_units' to metric or field")
+    return units
+
+
+def transmissibility_constant(coarse: xr.Dataset) -> float:
+    """Factor between the file's transmissibilities and geometric mD*m values: the unit
+    constant times the metres-to-length factor (``upscale.transmissibility`` writes
+    T = constant * to_length * T_geometric)."""
+    _, constant, to_length = TRANSMISSIBILITY_UNITS[coarse_units(coarse)]
+    return constant * to_length
+
+
+def coarse_faces(coarse: xr.Dataset, shape) -> list[np.ndarray]:
+    """The file's tx, ty, tz (dims (x_face, y, z) ...) times their multipliers, in file units."""
+    faces = []
+    for axis, name in enumerate(AXES):
+        key = f"t{name}"
+        if key not in coarse:
+            raise InputError(f"coarse grid: missing variable '{key}' (face transmissibilities along {name})")
+        dims = tuple(f"{name}_face" if d == name else d for d in AXES)
+        if set(coarse[key].dims) != set(dims):
+            raise InputError(f"coarse grid: variable '{key}' has dimensions {coarse[key].dims}, expected {dims}")
+        values = np.asarray(coarse[key].transpose(*dims).values, dtype=float)
+        multiplier = f"{key}_multiplier"
+        if multiplier in coarse:
+            values = values * np.asarray(coarse[multiplier].transpose(*dims).values, dtype=float)
+        wanted = tuple(n - 1 if a == axis else n for a, n in enumerate(shape))
+        if values.shape != wanted:
+            raise InputError(f"coarse grid: variable '{key}' has shape {values.shape}, expected {wanted}")
+        bad = ~np.isfinite(values) | (values < 0)
+        if bad.any():
+            raise InputError(f"coarse grid: variable '{key}' (times multiplier) is NaN, infinite or "
+                             f"negative on {int(bad.sum())} face(s), first at {tuple(np.argwhere(bad)[0])}")
+        faces.append(values)
+    return faces
