@@ -1,17 +1,21 @@
 """Figures for summaries and reports (matplotlib, no display needed).
 
-Each function draws onto a new ``matplotlib.figure.Figure`` (no global backend state)
-and saves it atomically as PNG.
+Each builder returns a new ``matplotlib.figure.Figure`` (no global backend state);
+:func:`save` writes one atomically as PNG, :func:`png_bytes` encodes one for embedding.
 """
 
 from __future__ import annotations
 
+import io
 from pathlib import Path
 
 import numpy as np
+from matplotlib.colors import TwoSlopeNorm
 from matplotlib.figure import Figure
 
 from .field import atomic_write
+
+AXES = ("x", "y", "z")
 
 
 def save(figure: Figure, path: str | Path) -> Path:
@@ -19,16 +23,21 @@ def save(figure: Figure, path: str | Path) -> Path:
     return atomic_write(path, lambda tmp: figure.savefig(tmp, format="png", dpi=110, bbox_inches="tight"))
 
 
+def png_bytes(figure: Figure) -> bytes:
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format="png", dpi=100, bbox_inches="tight")
+    return buffer.getvalue()
+
+
 def _log_k(k: np.ndarray, active: np.ndarray) -> np.ndarray:
-    out = np.full(k.shape, np.nan)
+    out = np.full(np.shape(k), np.nan)
     good = active & (k > 0)
     out[good] = np.log10(k[good])
     return out
 
 
 def fine_coarse_maps(fine_k: np.ndarray, fine_active: np.ndarray, coarse_k_on_fine: np.ndarray,
-                     coarse_active_on_fine: np.ndarray, layer: int, section_y: int, label: str,
-                     path: str | Path) -> Path:
+                     coarse_active_on_fine: np.ndarray, layer: int, section_y: int, label: str) -> Figure:
     """Fine and coarse log10 k side by side for one layer (map) and one x-z section,
     with one colour scale; the coarse values are given repeated onto the fine grid."""
     fine_log = _log_k(fine_k, fine_active)
@@ -52,4 +61,114 @@ def fine_coarse_maps(fine_k: np.ndarray, fine_active: np.ndarray, coarse_k_on_fi
         ax.set_ylabel(ylabel)
     colorbar = figure.colorbar(image, ax=axes, shrink=0.8)
     colorbar.set_label(f"log10 {label} (mD); blank = inactive")
-    return save(figure, path)
+    return figure
+
+
+def histograms(fine: dict, coarse: dict) -> Figure:
+    """Distributions of log10 effective k per direction, fine cells vs coarse cells,
+    each weighted by bulk volume. ``fine``/``coarse``: axis -> (k, bulk volume)."""
+    figure = Figure(figsize=(12, 3.8), layout="constrained")
+    for ax, name in zip(figure.subplots(1, 3), AXES):
+        for (k, volume), label, style in ((fine[name], "fine", "step"), (coarse[name], "coarse", "step")):
+            good = (k > 0) & (volume > 0)
+            ax.hist(np.log10(k[good]), bins=50, weights=volume[good] / volume[good].sum(),
+                    histtype=style, linewidth=1.8, label=label)
+        ax.set_xlabel(f"log10 effective k{name} (mD)")
+        ax.set_ylabel("share of bulk volume")
+        ax.legend(fontsize="small")
+    return figure
+
+
+def crossplot(errors: dict, tolerance: float) -> Figure:
+    """Static averages against the flow-based value per block, one panel a direction."""
+    figure = Figure(figsize=(12, 4.2), layout="constrained")
+    for ax, name in zip(figure.subplots(1, 3), AXES):
+        data = errors[name]
+        valid = data["valid"]
+        flow = data["flow"][valid]
+        if flow.size == 0:
+            ax.set_title(f"{name}: no active block")
+            continue
+        for method, marker in zip(data["static"], ("o", "s", "^")):
+            ax.loglog(flow, np.maximum(data["static"][method]["value"][valid], flow.min() * 1e-3), marker,
+                      markersize=2.5, alpha=0.5, linestyle="none", label=method)
+        line = np.array([flow.min(), flow.max()])
+        ax.loglog(line, line, "k-", linewidth=1, label="1:1")
+        ax.loglog(line, line * (1 + tolerance), "k:", linewidth=1, label=f"±{tolerance:.0%}")
+        ax.loglog(line, line * (1 - tolerance), "k:", linewidth=1)
+        ax.set_xlabel(f"flow-based k{name} (mD)")
+        ax.set_ylabel(f"static k{name} (mD)")
+        ax.legend(fontsize="small", markerscale=3)
+    return figure
+
+
+def error_map(error: np.ndarray, valid: np.ndarray, title: str) -> Figure:
+    """Map of relative errors of one layer of coarse blocks (diverging colours around 0)."""
+    data = np.where(valid, error, np.nan)
+    limit = float(np.nanmax(np.abs(data))) if np.isfinite(data).any() else 1.0
+    limit = min(max(limit, 1e-6), 10.0)
+    figure = Figure(figsize=(6.5, 5), layout="constrained")
+    ax = figure.subplots()
+    image = ax.imshow(data.T, origin="lower", cmap="RdBu_r", norm=TwoSlopeNorm(0.0, -limit, limit),
+                      interpolation="nearest", aspect="auto")
+    ax.set_xlabel("coarse x index")
+    ax.set_ylabel("coarse y index")
+    ax.set_title(title)
+    figure.colorbar(image, ax=ax, label="relative error (static - flow) / flow; blank = inactive")
+    return figure
+
+
+def whole_model_bars(global_check: dict) -> Figure:
+    """Whole-model effective permeability per axis, fine against coarse."""
+    figure = Figure(figsize=(6.5, 4), layout="constrained")
+    ax = figure.subplots()
+    names = [a for a in AXES if a in global_check]
+    fine = [global_check[a]["fine_k"] or 0.0 for a in names]
+    coarse = [global_check[a]["coarse_k"] or 0.0 for a in names]
+    x = np.arange(len(names))
+    ax.bar(x - 0.2, fine, 0.4, label="fine")
+    ax.bar(x + 0.2, coarse, 0.4, label="coarse")
+    for i, name in enumerate(names):
+        error = global_check[name].get("relative_error")
+        if error is not None:
+            ax.annotate(f"{error:+.1%}", (x[i] + 0.2, coarse[i]), ha="center", va="bottom", fontsize="small")
+    ax.set_xticks(x, [f"along {n}" for n in names])
+    ax.set_yscale("log")
+    ax.set_ylabel("whole-model effective k (mD)")
+    ax.set_title("whole-model steady flow, no-flow sides")
+    ax.legend()
+    return figure
+
+
+def transient_curves(result: dict) -> Figure:
+    """Drainage rate and cumulative volume over time, fine against coarse."""
+    figure = Figure(figsize=(11, 4), layout="constrained")
+    rate_ax, cumulative_ax = figure.subplots(1, 2)
+    time = np.asarray(result["times"], dtype=float)
+    for model, style in (("fine", "-"), ("coarse", "--")):
+        rate = np.asarray(result[model]["rate"], dtype=float)
+        rate_ax.loglog(time, np.where(rate > 0, rate, np.nan), style, label=model)
+        cumulative_ax.semilogx(time, result[model]["cumulative"], style, label=model)
+    rate_ax.set_xlabel("time (days)")
+    rate_ax.set_ylabel("rate (m3/day)")
+    cumulative_ax.set_xlabel("time (days)")
+    cumulative_ax.set_ylabel("cumulative volume (m3)")
+    rate_ax.legend()
+    cumulative_ax.legend()
+    rate_ax.set_title("drainage rate")
+    cumulative_ax.set_title("cumulative drained volume")
+    return figure
+
+
+def multiplier_map(multiplier: np.ndarray, name: str, index: int) -> Figure:
+    """Map of log10 transmissibility multipliers on one layer of faces."""
+    figure = Figure(figsize=(6.5, 5), layout="constrained")
+    ax = figure.subplots()
+    data = np.log10(np.clip(multiplier, 1e-6, None))
+    image = ax.imshow(data.T, origin="lower", cmap="magma", vmin=-3, vmax=max(0.5, float(data.max())),
+                      interpolation="nearest", aspect="auto")
+    ax.set_xlabel("coarse x index")
+    ax.set_ylabel("coarse y index")
+    ax.set_title(f"t{name} multipliers, face layer {index} (values < 1e-6 shown at 1e-6)")
+    figure.colorbar(image, ax=ax, label="log10 multiplier")
+    return figure

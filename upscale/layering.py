@@ -29,7 +29,10 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
-from .field import FineArrays, atomic_write, check_output_path
+from matplotlib.figure import Figure
+
+from .field import FineArrays, check_output_path
+from .figures import save
 
 #: Keys :func:`optimal_grouping` needs in ``stats``; :func:`judge_grouping` needs all of STAT_KEYS.
 OPTIMAL_KEYS = ("weight", "lnk_mean", "lnk_var")
@@ -442,16 +445,20 @@ LINE_STYLES = ("--", ":", "-.", (0, (5, 1, 1, 1, 1, 1)), (0, (8, 3)), (0, (1, 3)
 
 
 def plot_layer_profile(stats: dict, groupings: dict, path: str | os.PathLike) -> Path:
-    """Write a PNG depth profile of the layering with the group boundaries of each grouping.
+    """Write :func:`layer_profile_figure` as PNG, atomically. Returns the path."""
+    figure = layer_profile_figure(stats, groupings)
+    return save(figure, check_output_path(path))
+
+
+def layer_profile_figure(stats: dict, groupings: dict):
+    """A depth profile of the layering with the group boundaries of each grouping.
 
     Left panel: the fine-layer bulk-weighted mean of ln kh as a step curve against depth
     (cumulative layer thickness from the top, m, increasing downward); right panel: the
     standard deviation of ln kh inside each fine layer. Each grouping in ``groupings`` (name ->
     edges) draws its inner boundaries as horizontal lines in its own line style. Layers without
-    ln kh leave a gap. The file is written to a temporary name in the same folder and renamed
-    into place. Returns the path.
+    ln kh leave a gap. Returns a matplotlib Figure (no global backend is touched).
     """
-    from matplotlib.figure import Figure  # no global backend is touched
 
     missing = [k for k in ("thickness", "lnk_mean", "lnk_var", "weight") if k not in stats]
     if missing:
@@ -459,7 +466,6 @@ def plot_layer_profile(stats: dict, groupings: dict, path: str | os.PathLike) ->
     thickness = np.asarray(stats["thickness"], dtype=float)
     nz = thickness.size
     checked = {str(name): _check_edges(e, nz) for name, e in groupings.items()}
-    path = check_output_path(path)
     has_log = np.asarray(stats["weight"], dtype=float) > 0
     mean = np.where(has_log, np.asarray(stats["lnk_mean"], dtype=float), np.nan)
     std = np.where(has_log, np.sqrt(np.maximum(np.asarray(stats["lnk_var"], dtype=float), 0)), np.nan)
@@ -495,4 +501,4 @@ def plot_layer_profile(stats: dict, groupings: dict, path: str | os.PathLike) ->
     right.grid(True, alpha=0.3)
     right.set_xlim(left=0.0)
     left.legend(loc="best", fontsize="small")
-    return atomic_write(path, lambda temporary: figure.savefig(temporary, format="png", dpi=110))
+    return figure

@@ -202,3 +202,15 @@ def block_groups(partition: Partition, border: int = 0, extend: tuple[int, int, 
             target=tuple(slice(k[1], k[1] + k[2]) for k in keys),
             neighbour=tuple(slice(k[1] + k[2], k[1] + k[2] + k[3]) for k in keys)))
     return groups
+
+
+def partition_from_ranges(starts, stops) -> Partition:
+    """The partition given by each block's half-open fine index range per axis
+    (as stored in coarse files: x_start, x_stop, ...)."""
+    edges = []
+    for name, start, stop in zip(AXES, starts, stops):
+        start, stop = np.asarray(start, dtype=int), np.asarray(stop, dtype=int)
+        if start.size == 0 or start[0] != 0 or np.any(start[1:] != stop[:-1]) or np.any(stop <= start):
+            raise InputError(f"{name}_start/{name}_stop do not describe contiguous blocks from index 0")
+        edges.append(np.append(start, stop[-1]))
+    return Partition(edges=tuple(edges))

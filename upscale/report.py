@@ -1,0 +1,233 @@
+"""The upscaling report: one self-contained HTML page (figures embedded) and metrics.json.
+
+A plain engineering page of our own design: a header with the inputs, their checksums,
+the method and the cautions; then the whole-model checks, the per-block errors, the
+layering, the transient check and the multipliers, each with its figures.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+from pathlib import Path
+
+from .field import atomic_write
+from .figures import png_bytes
+
+CAUTION = ("upscale is a screening and engineering tool. These results are to be reviewed by "
+           "qualified engineers before they inform reserves, development or well decisions. "
+           "Local regulations and licensed professional practice prevail.")
+
+STYLE = """
+body { font-family: Helvetica, Arial, sans-serif; margin: 2em auto; max-width: 70em; color: #1d1d1d;
+       line-height: 1.4; padding: 0 1em; }
+h1 { font-size: 1.6em; border-bottom: 2px solid #444; padding-bottom: 0.2em; }
+h2 { font-size: 1.25em; margin-top: 2em; border-bottom: 1px solid #bbb; }
+table { border-collapse: collapse; margin: 0.8em 0; font-size: 0.92em; }
+th, td { border: 1px solid #c8c8c8; padding: 0.25em 0.6em; text-align: right; }
+th { background: #efefef; } td.text, th.text { text-align: left; }
+.caution { border: 2px solid #a86200; background: #fff6e8; padding: 0.7em 1em; margin: 1em 0; }
+figure { margin: 1em 0; } figure img { max-width: 100%; border: 1px solid #ddd; }
+figcaption { font-size: 0.9em; color: #444; }
+code { font-size: 0.95em; }
+"""
+
+
+def _cell(value) -> str:
+    if value is None:
+        return "–"
+    if isinstance(value, float):
+        if math.isnan(value):
+            return "–"
+        return f"{value:.4g}"
+    return html.escape(str(value))
+
+
+def table(header: list[str], rows: list[list], text_columns: int = 1) -> str:
+    """An HTML table; the first ``text_columns`` columns are left-aligned."""
+    head = "".join(f"<th class='text'>{html.escape(h)}</th>" if i < text_columns else f"<th>{html.escape(h)}</th>"
+                   for i, h in enumerate(header))
+    body = "".join("<tr>" + "".join(f"<td class='text'>{_cell(v)}</td>" if i < text_columns else f"<td>{_cell(v)}</td>"
+                                    for i, v in enumerate(row)) + "</tr>" for row in rows)
+    return f"<table><tr>{head}</tr>{body}</table>"
+
+
+def figure_html(figure, caption: str) -> str:
+    data = base64.b64encode(png_bytes(figure)).decode("ascii")
+    return (f"<figure><img alt='{html.escape(caption)}' src='data:image/png;base64,{data}'>"
+            f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+
+
+def page(title: str, sections: list[tuple[str, str]], header_html: str) -> str:
+    body = "".join(f"<h2>{html.escape(name)}</h2>{content}" for name, content in sections)
+    return (f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{html.escape(title)}</title>"
+            f"<style>{STYLE}</style></head><body><h1>{html.escape(title)}</h1>{header_html}"
+            f"<div class='caution'><strong>Caution.</strong> {html.escape(CAUTION)}</div>{body}</body></html>")
+
+
+def _json_ready(value):
+    """Plain Python values with NaN and infinities as None, so that metrics.json is strict JSON."""
+    if hasattr(value, "tolist"):  # numpy arrays and scalars
+        value = value.tolist()
+    if isinstance(value, dict):
+        return {str(k): _json_ready(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_ready(v) for v in value]
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def write_report(folder: str | Path, title: str, header_html: str, sections: list[tuple[str, str]],
+                 metrics: dict) -> dict[str, Path]:
+    """Write ``index.html`` and ``metrics.json`` into ``folder`` (each atomically)."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    text = json.dumps(_json_ready(metrics), indent=2, allow_nan=False)
+    paths = {"metrics": folder / "metrics.json", "html": folder / "index.html"}
+    atomic_write(paths["metrics"], lambda tmp: Path(tmp).write_text(text + "\n"))
+    document = page(title, sections, header_html)
+    atomic_write(paths["html"], lambda tmp: Path(tmp).write_text(document, encoding="utf-8"))
+    return paths
+
+
+def _header(metrics: dict) -> str:
+    inputs, coarse = metrics["inputs"], metrics["coarse"]
+    rows = [["fine field", inputs["fine"]["path"], inputs["fine"]["sha256"]],
+            ["coarse grid", inputs["coarse"]["path"], inputs["coarse"]["sha256"]]]
+    method = [["method", coarse.get("method")], ["boundary condition", coarse.get("boundary_condition")],
+              ["border (fine cells)", coarse.get("border")], ["partition", coarse.get("partition")],
+              ["coarse shape", " x ".join(map(str, coarse["shape"]))],
+              ["written by", f"upscale {coarse.get('tool_version')}"],
+              ["coarse grid made from this fine file", "yes" if coarse.get("input_matches_fine") else
+               "no (checksums differ)"]]
+    return table(["input", "path", "SHA-256"], rows, 3) + table(["setting", "value"], method, 2)
+
+
+def _global_section(metrics: dict) -> str:
+    rows = []
+    for axis, g in metrics["global"].items():
+        rows.append([f"along {axis}", g["fine_k"], g["coarse_k"], g["relative_error"],
+                     metrics["pressure_rms"].get(axis), g["fine_residual"], g["coarse_residual"]])
+    text = ("<p>Each model is solved with no-flow sides and a unit pressure drop between the two "
+            "faces normal to the axis; the coarse model uses the coarse file's transmissibilities "
+            "and multipliers. Pressure RMS: coarse pressures against the bulk-weighted block "
+            "averages of the fine pressures, as a fraction of the drop.</p>")
+    shares = []
+    for axis, share in metrics.get("layer_flow_share", {}).items():
+        for layer, (f, c) in enumerate(zip(share["fine"], share["coarse"])):
+            shares.append([f"along {axis}", layer, f, c, None if f is None or c is None else c - f])
+    return (text + table(["flow", "fine k (mD)", "coarse k (mD)", "relative error", "pressure RMS",
+                          "fine residual", "coarse residual"], rows)
+            + "<p>Share of the total flow carried by each coarse layer:</p>"
+            + table(["flow", "coarse layer", "fine", "coarse", "difference"], shares, 1))
+
+
+def _block_section(metrics: dict) -> str:
+    blocks = metrics["blocks"]
+    rows = []
+    for axis in ("x", "y", "z"):
+        d = blocks[axis]
+        for method, m in d["methods"].items():
+            e = m["relative_error"]
+            rows.append([axis, method, e["median"], e["p90"], e["max"], m["flagged_blocks"], m["outside_bounds"],
+                         d["blocks"]])
+    widths = [[axis, blocks[axis]["bound_width"]["median"], blocks[axis]["bound_width"]["p90"],
+               blocks[axis]["bound_width"]["max"], blocks[axis]["flow_outside_bounds"]] for axis in ("x", "y", "z")]
+    return (f"<p>Flow-based reference: {html.escape(blocks['flow_reference'])}. A block is flagged when a "
+            f"static average misses it by more than {blocks['tolerance']:.0%} or falls outside the "
+            "Cardwell-Parsons bounds.</p>"
+            + table(["direction", "static method", "median |error|", "p90 |error|", "max |error|", "flagged",
+                     "outside bounds", "blocks"], rows, 2)
+            + "<p>Width of the Cardwell-Parsons bounds (upper / lower) per block:</p>"
+            + table(["direction", "median", "p90", "max", "flow value outside bounds"], widths))
+
+
+def _layering_section(metrics: dict) -> str:
+    layering = metrics.get("layering")
+    if not layering:
+        return "<p>One fine layer: no layering to judge.</p>"
+    rows = []
+    for name, judged in layering.items():
+        rows.append([name, " ".join(map(str, judged.get("edges", []))), judged.get("variance_kept"),
+                     judged.get("worst_std")])
+    return ("<p>Share of the variance of ln(kx·ntg) kept between coarse layers (1 = all heterogeneity "
+            "is between layers), for the coarse file's grouping, the optimal grouping with the same "
+            "number of layers (dynamic programming, least within-layer variance) and the uniform one.</p>"
+            + table(["grouping", "edges", "variance kept", "largest within-layer std of ln k"], rows, 2))
+
+
+def _transient_section(metrics: dict) -> str:
+    t = metrics.get("transient") or {}
+    setup = t.get("drainage") or {}
+    rows = [["drainage", setup.get("kind", setup) if isinstance(setup, dict) else setup],
+            ["relative error of the final cumulative volume", t.get("final_cumulative_relative_error")],
+            ["pore volume, relative difference", t.get("pore_volume_relative_difference")],
+            ["fine: drained fraction at the end", (t.get("fine") or {}).get("drained_fraction_end")],
+            ["coarse: drained fraction at the end", (t.get("coarse") or {}).get("drained_fraction_end")]]
+    return ("<p>Slightly compressible single-phase drainage, implicit Euler in time: a test of pore "
+            "volumes and transmissibilities together.</p>" + table(["quantity", "value"], rows, 1))
+
+
+def _multiplier_section(metrics: dict) -> str:
+    m = metrics.get("multipliers")
+    if not m:
+        return "<p>The coarse file carries no flow-based multipliers (coarsen with --multipliers).</p>"
+    rows = [[axis, m[axis]["faces"], m[axis]["below"], m[axis]["closed"]] for axis in ("x", "y", "z")]
+    return (f"<p>Faces whose flow-based multiplier is below {m['threshold']}: barriers the coarse "
+            "permeability alone would miss.</p>" + table(["direction", "faces", "below threshold", "closed (0)"], rows))
+
+
+def build_report(folder, metrics: dict, arrays: dict) -> dict[str, Path]:
+    """Compose the figures and tables of ``upscale check`` and write the report."""
+    import numpy as np
+
+    from . import figures
+    from .layering import layer_profile_figure, layer_statistics
+
+    cells, partition, coarse = arrays["cells"], arrays["partition"], arrays["coarse"]
+    errors = arrays["blocks"]
+    ntg = coarse["ntg"].values
+    coarse_k = {"x": coarse["kx"].values * ntg, "y": coarse["ky"].values * ntg, "z": coarse["kz"].values}
+    fine_k = dict(zip(("x", "y", "z"), cells.flow_permeability()))
+    active_fine = partition.expand(coarse["active"].values.astype(bool))
+    layer, section = cells.shape[2] // 3, cells.shape[1] // 2
+    coarse_layer = int(np.searchsorted(partition.edges[2], layer, side="right") - 1)
+    maps = figures.fine_coarse_maps(fine_k["x"], cells.active, partition.expand(coarse_k["x"]), active_fine,
+                                    layer, section, "kx * ntg")
+    bulk = coarse["bulk_volume"].values
+    hist = figures.histograms({a: (fine_k[a][cells.active], cells.bulk_volume[cells.active]) for a in fine_k},
+                              {a: (coarse_k[a].ravel(), bulk.ravel()) for a in coarse_k})
+    worst = max(("x", "y", "z"), key=lambda a: metrics["blocks"][a]["methods"]["arithmetic"]["flagged_blocks"])
+    error = errors[worst]["static"]["arithmetic"]
+    sections = [
+        ("Whole-model check", _global_section(metrics)
+         + figure_html(figures.whole_model_bars(metrics["global"]), "Whole-model effective permeability, fine and coarse.")),
+        ("Fine and coarse fields", figure_html(maps, f"log10 kx·ntg, layer {layer} and section y = {section}, one colour scale.")
+         + figure_html(hist, "Distributions of effective permeability, fine cells and coarse cells, by bulk volume.")),
+        ("Static averages against flow-based permeability", _block_section(metrics)
+         + figure_html(figures.crossplot(errors, metrics["blocks"]["tolerance"]), "Static averages against the flow-based value per coarse block.")
+         + figure_html(figures.error_map(error["error"][:, :, coarse_layer], errors[worst]["valid"][:, :, coarse_layer],
+                                         f"arithmetic vs flow along {worst}, coarse layer {coarse_layer}"),
+                       f"Relative error of the arithmetic average along {worst} (the direction with most flagged blocks).")),
+        ("Layering", _layering_section(metrics)),
+        ("Transient drainage check", _transient_section(metrics)),
+        ("Transmissibility multipliers", _multiplier_section(metrics)),
+    ]
+    layering = metrics.get("layering")
+    if layering:
+        groupings = {name: judged["edges"] for name, judged in layering.items() if "edges" in judged}
+        sections[3] = ("Layering", sections[3][1] + figure_html(
+            layer_profile_figure(layer_statistics(cells), groupings), "Fine-layer profile with the group boundaries."))
+    transient = metrics.get("transient")
+    if transient and "times" in transient:
+        sections[4] = (sections[4][0], sections[4][1] + figure_html(figures.transient_curves(transient),
+                                                                    "Drainage rate and cumulative volume, fine and coarse."))
+    if metrics.get("multipliers") and coarse.sizes["z"] > 1:
+        face_layer = min(coarse_layer, coarse.sizes["z"] - 2)
+        sections[5] = (sections[5][0], sections[5][1] + figure_html(
+            figures.multiplier_map(coarse["tz_multiplier"].values[:, :, face_layer], "z", face_layer),
+            "Vertical multipliers on one layer of coarse faces."))
+    return write_report(folder, "upscale check report", _header(metrics), sections, metrics)
