@@ -9,11 +9,12 @@ import numpy as np
 
 from .coarse_grid import coarsen
 from .field import arrays, atomic_write, open_field, write
-from .figures import fine_coarse_maps
+from .figures import fine_coarse_maps, save
 from .partition import make_partition
 from .static import STATIC_METHODS, static_average
 from .summary import field_summary, format_summary
 from .synthetic import demo_field
+from .transmissibility import barrier_summary, multiplier_csv
 
 DEMO_RATIO = (5, 5, 5)
 CAUTION = ("Caution: upscale is a screening and engineering tool. Its results are to be reviewed by "
@@ -41,6 +42,13 @@ def _static_versus_flow(cells, partition, coarse) -> str:
     return "\n".join(lines)
 
 
+def _barriers(coarse, label: str) -> str:
+    """Text: faces whose flow-based multiplier is below 0.1, per direction."""
+    summary = barrier_summary({n: coarse[f"t{n}_multiplier"].values for n in "xyz"})
+    counts = ", ".join(f"{n}: {summary[n]['below']} of {summary[n]['faces']}" for n in "xyz")
+    return f"Faces with multiplier < {summary['threshold']} relative to {label}: {counts}"
+
+
 def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     """Write the demo field, coarsen it with flow-based upscaling, write a summary.
 
@@ -52,20 +60,25 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     fields.mkdir(parents=True, exist_ok=True)
     reports.mkdir(parents=True, exist_ok=True)
     paths = {"fine": fields / "demo.nc", "coarse": fields / "demo_coarse.nc",
+             "static": fields / "demo_coarse_arithmetic.nc", "multipliers": reports / "multipliers.csv",
              "summary": reports / "summary.txt", "figure": reports / "fine_coarse_kx.png"}
 
     write(demo_field(), paths["fine"])
     fine = open_field(paths["fine"])
-    coarse = coarsen(fine, ratio=DEMO_RATIO, method="flow", bc="sealed")
+    coarse = coarsen(fine, ratio=DEMO_RATIO, method="flow", bc="sealed", multipliers=True)
     write(coarse, paths["coarse"])
+    static = coarsen(fine, ratio=DEMO_RATIO, method="arithmetic", multipliers=True)
+    write(static, paths["static"])
+    face_multipliers = {n: static[f"t{n}_multiplier"].values for n in "xyz"}
+    atomic_write(paths["multipliers"], lambda tmp: Path(tmp).write_text(multiplier_csv(face_multipliers)))
 
     cells = arrays(fine)
     partition = make_partition(cells.shape, ratio=DEMO_RATIO)
     active_fine = partition.expand(coarse["active"].values.astype(bool))
     kx_effective = partition.expand(coarse["kx"].values * coarse["ntg"].values)
-    fine_coarse_maps(cells.kx * cells.ntg, cells.active, kx_effective, active_fine,
-                     layer=cells.shape[2] // 3, section_y=cells.shape[1] // 2,
-                     label="kx * ntg", path=paths["figure"])
+    save(fine_coarse_maps(cells.kx * cells.ntg, cells.active, kx_effective, active_fine,
+                          layer=cells.shape[2] // 3, section_y=cells.shape[1] // 2, label="kx * ntg"),
+         paths["figure"])
 
     fine_pv = float(cells.pore_volume.sum())
     coarse_pv = float(coarse["pore_volume"].values.sum())
@@ -80,6 +93,8 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
         f"(relative difference {abs(coarse_pv - fine_pv) / fine_pv:.1e}).\n"
         f"Largest relative residual of the local solves: {float(coarse['solve_residual'].max()):.1e}",
         _static_versus_flow(cells, partition, coarse),
+        _barriers(coarse, "flow-based (sealed) permeability") + "\n" + _barriers(static, "arithmetic permeability")
+        + f"\nAll multipliers of the arithmetic grid: {paths['multipliers']}",
     ])
     atomic_write(paths["summary"], lambda tmp: Path(tmp).write_text(text + "\n"))
     elapsed = time.perf_counter() - started

@@ -164,11 +164,20 @@ def _coupling_sum(domain: LocalDomain, couplings: Couplings) -> np.ndarray:
 
 
 def _components(first, second, values, nb: int, n: int) -> np.ndarray:
-    """Connected-component label of every cell (nb * n,) over positive transmissibilities."""
-    b, e = np.nonzero(values > 0)
-    rows, cols = b * n + first[e], b * n + second[e]
-    graph = coo_matrix((np.ones(rows.size, dtype=np.int8), (rows, cols)), shape=(nb * n, nb * n))
-    return connected_components(graph.tocsr(), directed=False)[1]
+    """Connected-component label of every cell (nb * n,) over positive transmissibilities.
+
+    A domain whose couplings are all positive is one component (labelled by its index);
+    only the others go through the graph search.
+    """
+    labels = np.repeat(np.arange(nb), n).reshape(nb, n)
+    broken = np.flatnonzero(np.any(values <= 0, axis=1))
+    if broken.size:
+        b, e = np.nonzero(values[broken] > 0)
+        rows, cols = b * n + first[e], b * n + second[e]
+        size = broken.size * n
+        graph = coo_matrix((np.ones(rows.size, dtype=np.int8), (rows, cols)), shape=(size, size))
+        labels[broken] = nb + connected_components(graph.tocsr(), directed=False)[1].reshape(broken.size, n)
+    return labels.ravel()
 
 
 @dataclass
@@ -178,9 +187,10 @@ class Boundary:
     kinds: tuple[str, str, str]
 
 
-def _diagonal(domain: LocalDomain, couplings: Couplings, coupling_sum, boundary: Boundary, labels):
+def _diagonal(domain: LocalDomain, couplings: Couplings, coupling_sum, boundary: Boundary, labels, first):
     """Matrix diagonal (nb, sx, sy, sz) with Dirichlet terms and grounding, the mask of
-    cells touching a Dirichlet face, and the mask of cells connected to the boundary data."""
+    cells touching a Dirichlet face, and the mask of cells connected to the boundary data.
+    ``first`` holds the first cell of every component (the one grounded if needed)."""
     nb, shape = domain.count, domain.shape
     n = int(np.prod(shape))
     diag = coupling_sum.copy()
@@ -194,7 +204,6 @@ def _diagonal(domain: LocalDomain, couplings: Couplings, coupling_sum, boundary:
     flat = diag.reshape(nb, n)
     touched = np.zeros(labels.max() + 1, dtype=bool)
     touched[labels[touch.ravel()]] = True
-    _, first = np.unique(labels, return_index=True)
     ground = first[~touched[labels[first]]]
     gb, gk = np.divmod(ground, n)
     flat[gb, gk] += np.where(flat[gb, gk] > 0, flat[gb, gk], 1.0)
@@ -324,6 +333,7 @@ class LocalProblem:
         self.couplings = _couplings(domain, periodic)
         self.first, self.second, self.values = _pattern(shape, self.couplings)
         self.labels = _components(self.first, self.second, self.values, nb, self.n)
+        self.component_start = np.unique(self.labels, return_index=True)[1]
         self.coupling_sum = _coupling_sum(domain, self.couplings)
         self.pos, self.width = _band_order(shape, periodic)
 
@@ -331,7 +341,8 @@ class LocalProblem:
         """Solve one system for the unit-gradient cases along the given axes."""
         domain, pos, n = self.domain, self.pos, self.n
         nb = domain.count
-        diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.labels)
+        diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.labels,
+                                            self.component_start)
         banded_diag = np.empty((nb, n))
         banded_diag[:, pos] = diag.reshape(nb, n)
         rhs = np.zeros((nb, len(cases), n))
