@@ -113,6 +113,8 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
         worst = float(flow.residual.max(initial=0.0))
         if worst > 1e-10:
             log.warning("largest relative residual of the local solves is %.2e (> 1e-10)", worst)
+    _warn_flagged(effective, volumes["active"], coarse,
+                  sealed_axes=[a for a, m in enumerate(methods) if m == "flow" and bc == "sealed"])
     if multipliers:
         flow_faces, residuals = flow_transmissibility(cells, partition, border=int(border), units=units,
                                                       progress=progress)
@@ -128,6 +130,27 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
     coarse.attrs.update(_provenance(fine, partition, methods, bc if flow is not None else "none",
                                     border, omega, units))
     return coarse
+
+
+def _warn_flagged(effective: np.ndarray, active: np.ndarray, coarse: xr.Dataset, sealed_axes) -> None:
+    """Warn about active blocks that do not flow along an axis, and about sealed flow-based
+    values outside the Cardwell-Parsons bounds (beyond round-off), which would be a fault."""
+    for axis, name in enumerate(AXES):
+        k = effective[..., axis, axis]
+        closed = active & (k == 0)
+        if closed.any():
+            first = tuple(int(i) for i in np.argwhere(closed)[0])
+            log.warning("%d active coarse block(s) have zero k%s (no connected path across), first at %s",
+                        int(closed.sum()), name, first)
+        if axis not in sealed_axes:
+            continue
+        lower = coarse[f"k{name}_lower_bound"].values
+        upper = coarse[f"k{name}_upper_bound"].values
+        outside = active & ((k < lower * (1 - 1e-8)) | (k > upper * (1 + 1e-8)))
+        if outside.any():
+            first = tuple(int(i) for i in np.argwhere(outside)[0])
+            log.warning("%d coarse block(s) have sealed flow-based k%s outside the Cardwell-Parsons "
+                        "bounds, first at %s: please report this", int(outside.sum()), name, first)
 
 
 def _volumes(cells: FineArrays, partition: Partition) -> dict[str, np.ndarray]:

@@ -25,6 +25,7 @@ between its inflow and outflow faces has exactly 0 along that axis.
 
 from __future__ import annotations
 
+import logging
 from dataclasses import dataclass
 
 import numpy as np
@@ -37,6 +38,7 @@ from .partition import BlockGroup, Partition, block_groups
 from .solvers import solve_batch
 from .tpfa import harmonic_pair, half_transmissibility
 
+log = logging.getLogger(__name__)
 BOUNDARY_CONDITIONS = ("sealed", "periodic", "linear")
 BATCH_BYTES = 256 * 2 ** 20
 
@@ -460,7 +462,22 @@ def _tensor(domain, bc, velocity, gradient, residual):
     norm = np.linalg.norm(k, axis=(1, 2))
     asymmetry = np.divide(np.linalg.norm(k - k.transpose(0, 2, 1), axis=(1, 2)), norm,
                           out=np.zeros(nb), where=norm > 0)
-    return 0.5 * (k + k.transpose(0, 2, 1)), residual, asymmetry
+    return _positive_semidefinite(0.5 * (k + k.transpose(0, 2, 1))), residual, asymmetry
+
+
+def _positive_semidefinite(k: np.ndarray) -> np.ndarray:
+    """Clip negative eigenvalues of symmetric tensors (nb, 3, 3) to 0.
+
+    A block that does not flow along some direction has a zero eigenvalue, which the solve
+    returns as +-1e-17 or so. With a border ring the averaged tensor is not guaranteed to be
+    positive definite; clearly negative eigenvalues are clipped too, with a warning."""
+    values, vectors = np.linalg.eigh(k)
+    scale = np.abs(values).max(axis=1, keepdims=True)
+    clearly = np.any(values < -1e-8 * np.maximum(scale, 1e-300), axis=1)
+    if clearly.any():
+        log.warning("%d local tensor(s) were not positive semi-definite and were clipped to the nearest "
+                    "one (border averaging); consider a wider border or the sealed condition", int(clearly.sum()))
+    return np.einsum("bij,bj,bkj->bik", vectors, np.maximum(values, 0.0), vectors)
 
 
 def _batches(group: BlockGroup, budget: int):
