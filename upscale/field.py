@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import hashlib
 import os
+import select
+import signal
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -99,6 +101,78 @@ def file_checksum(path: str | os.PathLike) -> str:
     return digest.hexdigest()
 
 
+#: seconds the NetCDF library may take to open a file's header in the probe (see _probe_header)
+PROBE_SECONDS = 20.0
+#: bytes of address space the probe may use beyond what the process already has
+PROBE_MEMORY = 1 << 30
+
+
+def _probe_header(path: Path) -> None:
+    """Open the file's header in a forked child first; raise InputError if that fails.
+
+    On corrupt files the NetCDF and HDF5 libraries can crash (SIGSEGV), loop forever or
+    try to allocate gigabytes while opening, and no exception handler catches that. The
+    child has a time and memory limit; its death or silence marks the file as corrupt.
+    """
+    if not hasattr(os, "fork"):
+        return
+    import netCDF4  # imported before forking: the parent needs it next anyway
+
+    read_end, write_end = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # child: never returns
+        status = 0
+        try:
+            os.close(read_end)
+            null = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(null, 1)
+            os.dup2(null, 2)  # HDF5 prints diagnostics on errors
+            try:  # a header that claims gigabytes fails to allocate instead of taking the memory
+                import resource
+
+                with open("/proc/self/status") as status_file:
+                    size = next(int(line.split()[1]) * 1024 for line in status_file if line.startswith("VmSize:"))
+                hard = resource.getrlimit(resource.RLIMIT_AS)[1]
+                resource.setrlimit(resource.RLIMIT_AS, (size + PROBE_MEMORY, hard))
+            except Exception:
+                pass  # no limit available here
+            try:
+                with netCDF4.Dataset(path) as nc:
+                    for var in nc.variables.values():
+                        var.ncattrs()
+            except BaseException as exc:
+                reason = (str(exc).splitlines() or [""])[0] or type(exc).__name__
+                os.write(write_end, reason.encode("utf-8", "replace")[:2000] or b"?")
+                status = 3
+        finally:
+            os._exit(status)
+    os.close(write_end)
+    try:
+        ready, _, _ = select.select([read_end], [], [], PROBE_SECONDS)
+        message = os.read(read_end, 4096).decode("utf-8", "replace") if ready else ""
+    except BaseException:  # e.g. Ctrl-C while waiting: do not leave the child behind
+        os.kill(pid, signal.SIGKILL)
+        os.waitpid(pid, 0)
+        raise
+    finally:
+        os.close(read_end)
+    if not ready:
+        os.kill(pid, signal.SIGKILL)
+    try:
+        _, status = os.waitpid(pid, 0)
+    except ChildProcessError:  # reaped elsewhere (SIGCHLD ignored): judge by the message alone
+        status = 3 << 8 if message else 0
+    if not ready:
+        raise InputError(f"{path}: not a readable NetCDF file (the NetCDF library did not finish opening it "
+                         f"within {PROBE_SECONDS:g} s; the file is probably corrupt)")
+    if os.WIFSIGNALED(status):
+        name = signal.Signals(os.WTERMSIG(status)).name
+        raise InputError(f"{path}: not a readable NetCDF file (the NetCDF library crashed on it with {name}; "
+                         f"the file is probably corrupt)")
+    if os.WEXITSTATUS(status) != 0:
+        raise InputError(f"{path}: not a readable NetCDF file ({message})")
+
+
 def open_field(path: str | os.PathLike) -> xr.Dataset:
     """Read and validate a fine (or coarse) field file; returns a normalised Dataset.
 
@@ -109,8 +183,14 @@ def open_field(path: str | os.PathLike) -> xr.Dataset:
         raise InputError(f"{path}: no such file")
     if path.is_dir():
         raise InputError(f"{path}: is a folder, expected a NetCDF file")
+    _probe_header(path)
     try:
-        with xr.open_dataset(path, engine="netcdf4") as raw:
+        # no time decoding: a field holds no times, and units such as 'days since ...' on a
+        # cell size must be refused as unknown units, not turned into dates
+        # errstate: overflow or NaN from scale_factor/add_offset is reported by validate, not as
+        # numpy warnings that break the one-line error
+        with (np.errstate(all="ignore"),
+              xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False) as raw):
             ds = raw.load()
     except Exception as exc:  # netCDF4 raises OSError, ValueError, RuntimeError...
         reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
@@ -184,6 +264,10 @@ def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
     optional = [n for n in ("ntg", "active") if n in ds]
     for name in (*k_names, "porosity", *optional):
         _require_dims(ds, name, (DIMS,), where)
+    for name in ("dx", "dy", "dz", *k_names, "porosity", *optional):
+        if ds[name].dtype.kind not in "biuf":
+            raise InputError(f"{where}: variable '{name}' is not numeric (type {ds[name].dtype}); "
+                             f"store it as numbers")
 
     shape = tuple(ds.sizes[d] for d in DIMS)
     sizes = {}
@@ -279,6 +363,9 @@ def atomic_write(path: str | os.PathLike, write_to) -> Path:
     os.close(handle)
     try:
         write_to(temporary)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(temporary, 0o666 & ~umask)  # mkstemp creates 0600; give the usual permissions
         os.replace(temporary, path)
     except BaseException:
         if os.path.exists(temporary):
