@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from scipy.sparse import coo_matrix
@@ -69,7 +70,7 @@ class LocalDomain:
     def count(self) -> int:
         return self.k[0].shape[0]
 
-    @property
+    @cached_property
     def volume(self) -> np.ndarray:
         lx, ly, lz = self.lengths
         return lx * ly * lz
@@ -498,12 +499,13 @@ def local_domains(fine: FineArrays, partition: Partition, border: int = 0, exten
                   budget: int = BATCH_BYTES):
     """Yield (batch, LocalDomain) for every block (extended by ``extend`` blocks per axis)."""
     k = fine.flow_permeability()
-    lengths = (np.broadcast_to(fine.dx[:, None, None], fine.shape),
-               np.broadcast_to(fine.dy[None, :, None], fine.shape), fine.dz)
     for group in block_groups(partition, border, extend):
         for batch in _batches(group, budget):
-            yield batch, LocalDomain(k=tuple(batch.gather(a) for a in k),
-                                     lengths=tuple(batch.gather(a) for a in lengths), target=batch.target)
+            full = (batch.count,) + batch.shape
+            lx = np.broadcast_to(batch.gather_line(fine.dx, 0)[:, :, None, None], full)
+            ly = np.broadcast_to(batch.gather_line(fine.dy, 1)[:, None, :, None], full)
+            yield batch, LocalDomain(k=tuple(batch.gather(a) for a in k), lengths=(lx, ly, batch.gather(fine.dz)),
+                                     target=batch.target)
 
 
 def flow_tensors(fine: FineArrays, partition: Partition, bc: str = "sealed", border: int = 0,

@@ -153,13 +153,26 @@ class BlockGroup:
     def count(self) -> int:
         return int(np.prod([len(b) for b in self.blocks]))
 
+    def _flat_index(self, fine_shape) -> np.ndarray:
+        """Flat (C-order) fine index of every local-domain cell, (count, *shape); cached."""
+        cache = self.__dict__.setdefault("_index_cache", {})
+        if fine_shape not in cache:
+            ix, iy, iz = [s[:, None] + np.arange(n)[None, :] for s, n in zip(self.starts, self.shape)]
+            ny, nz = fine_shape[1], fine_shape[2]
+            cache[fine_shape] = ((ix[:, None, None, :, None, None] * ny + iy[None, :, None, None, :, None]) * nz
+                                 + iz[None, None, :, None, None, :]).reshape((self.count,) + self.shape)
+        return cache[fine_shape]
+
     def gather(self, values: np.ndarray) -> np.ndarray:
         """Local-domain copies of a fine array: shape (count, *shape)."""
-        index = [s[:, None] + np.arange(n)[None, :] for s, n in zip(self.starts, self.shape)]
-        ix, iy, iz = index
-        out = values[ix[:, None, None, :, None, None], iy[None, :, None, None, :, None],
-                     iz[None, None, :, None, None, :]]
-        return out.reshape((self.count,) + self.shape)
+        return np.take(np.ravel(values), self._flat_index(values.shape))
+
+    def gather_line(self, values: np.ndarray, axis: int) -> np.ndarray:
+        """Local-domain copies of a fine 1-D array along ``axis`` (e.g. dx): (count, shape[axis])."""
+        lines = values[self.starts[axis][:, None] + np.arange(self.shape[axis])[None, :]]
+        counts = [len(b) for b in self.blocks]
+        shaped = lines.reshape([counts[a] if a == axis else 1 for a in range(3)] + [self.shape[axis]])
+        return np.broadcast_to(shaped, counts + [self.shape[axis]]).reshape(self.count, self.shape[axis])
 
     def scatter(self, coarse: np.ndarray, results: np.ndarray) -> None:
         """Write per-block ``results`` (count, ...) into a coarse (NX, NY, NZ, ...) array."""
