@@ -249,8 +249,10 @@ def _wrap_jump(domain: LocalDomain, case: int, a: int) -> np.ndarray | float:
     return _take(_face_coordinates(domain, a), a, domain.shape[a])
 
 
-def _face_values(domain, couplings: Couplings, p, boundary: Boundary, bc: str, case: int):
-    """Per axis: flux in +a direction and pressure on every face normal to a (n + 1 faces)."""
+def _face_values(domain, couplings: Couplings, p, boundary: Boundary, bc: str, case: int,
+                 with_pressure: bool = True):
+    """Per axis: flux in +a direction and pressure on every face normal to a (n + 1 faces);
+    the pressures only ``with_pressure`` (else None)."""
     fluxes, pressures = [], []
     for a in range(3):
         n = domain.shape[a]
@@ -259,7 +261,6 @@ def _face_values(domain, couplings: Couplings, p, boundary: Boundary, bc: str, c
         h_first, h_last = _take(h, a, 0), _take(h, a, n - 1)
         pl, pr = _take(p, a, slice(0, n - 1)), _take(p, a, slice(1, n))
         q_in = couplings.inner[a] * (pl - pr)
-        p_in = _interpolate(_take(h, a, slice(0, n - 1)), pl, _take(h, a, slice(1, n)), pr)
         kind = boundary.kinds[a]
         if kind == "dirichlet":
             p_lo = _dirichlet_values(domain, bc, case, a, 0)
@@ -272,11 +273,14 @@ def _face_values(domain, couplings: Couplings, p, boundary: Boundary, bc: str, c
             jump = _wrap_jump(domain, case, a)
             image = first - jump
             q_lo = q_hi = couplings.wrap[a] * (last - image)
-            p_hi = _interpolate(h_last, last, h_first, image)
-            p_lo = p_hi + jump
+            if with_pressure:
+                p_hi = _interpolate(h_last, last, h_first, image)
+                p_lo = p_hi + jump
         fluxes.append(np.concatenate([q_lo, q_in, q_hi], axis=a + 1))
-        pressures.append(np.concatenate([p_lo, p_in, p_hi], axis=a + 1))
-    return fluxes, pressures
+        if with_pressure:
+            p_in = _interpolate(_take(h, a, slice(0, n - 1)), pl, _take(h, a, slice(1, n)), pr)
+            pressures.append(np.concatenate([p_lo, p_in, p_hi], axis=a + 1))
+    return fluxes, (pressures if with_pressure else None)
 
 
 def _interpolate(h1, p1, h2, p2):
@@ -288,7 +292,8 @@ def _interpolate(h1, p1, h2, p2):
 
 
 def _target_averages(domain: LocalDomain, fluxes, pressures, connected):
-    """Volume-averaged velocity and pressure gradient over the target block (nb, 3) each."""
+    """Volume-averaged velocity and pressure gradient over the target block (nb, 3) each;
+    the gradient is 0 when no face pressures are given (it is then imposed, not measured)."""
     t = domain.target
     volume = domain.volume
     v_target = volume[(slice(None),) + t].reshape(domain.count, -1).sum(axis=1)
@@ -296,11 +301,15 @@ def _target_averages(domain: LocalDomain, fluxes, pressures, connected):
     for a in range(3):
         n = domain.shape[a]
         length = domain.lengths[a]
-        q, pf = fluxes[a], pressures[a]
+        q = fluxes[a]
         cell_flux = length * 0.5 * (_take(q, a, slice(0, n)) + _take(q, a, slice(1, n + 1)))
+        velocity.append(cell_flux[(slice(None),) + t].reshape(domain.count, -1).sum(axis=1))
+        if pressures is None:
+            gradient.append(np.zeros(domain.count))
+            continue
+        pf = pressures[a]
         area = np.divide(volume, length, out=np.zeros_like(volume), where=length > 0)
         cell_drop = area * (_take(pf, a, slice(1, n + 1)) - _take(pf, a, slice(0, n))) * connected
-        velocity.append(cell_flux[(slice(None),) + t].reshape(domain.count, -1).sum(axis=1))
         gradient.append(cell_drop[(slice(None),) + t].reshape(domain.count, -1).sum(axis=1))
     scale = np.where(v_target > 0, v_target, 1.0)[:, None]
     return np.stack(velocity, axis=1) / scale, np.stack(gradient, axis=1) / scale
@@ -394,7 +403,8 @@ def solve_domains(domain: LocalDomain, bc: str) -> tuple[np.ndarray, np.ndarray,
                 if not domain.bordered:
                     _sealed_unbordered(domain, problem.inflow(p, case), through, case, velocity, gradient)
                     continue
-            fluxes, pressures = _face_values(domain, problem.couplings, p, boundary, bc, case)
+            fluxes, pressures = _face_values(domain, problem.couplings, p, boundary, bc, case,
+                                             with_pressure=domain.bordered)
             velocity[:, :, case], gradient[:, :, case] = _target_averages(domain, fluxes, pressures,
                                                                           solved.connected)
             if bc == "sealed":
