@@ -213,20 +213,22 @@ def _refuse(mask: np.ndarray, where: str, name: str, problem: str, dims, fix: st
                          f"{_first_index(mask, dims)}; {fix}")
 
 
-def _length_scale(ds: xr.Dataset, name: str, where: str) -> float:
-    units = str(ds[name].attrs.get("units", "m")).strip()
-    scale = LENGTH_TO_M.get(units.lower())
+def _unit_scale(ds: xr.Dataset, name: str, where: str, table: dict, default: str, wanted: str) -> float:
+    """Factor converting variable ``name`` from its ``units`` attribute (``default`` when
+    absent) with ``table``; an unknown unit is refused, naming the ones accepted."""
+    units = str(ds[name].attrs.get("units", default)).strip()
+    scale = table.get(units.lower())
     if scale is None:
-        raise InputError(f"{where}: variable '{name}' has unknown units '{units}'; use 'm' or 'ft'")
+        raise InputError(f"{where}: variable '{name}' has unknown units '{units}'; use {wanted}")
     return scale
+
+
+def _length_scale(ds: xr.Dataset, name: str, where: str) -> float:
+    return _unit_scale(ds, name, where, LENGTH_TO_M, "m", "'m' or 'ft'")
 
 
 def _permeability_scale(ds: xr.Dataset, name: str, where: str) -> float:
-    units = str(ds[name].attrs.get("units", "mD")).strip()
-    scale = PERMEABILITY_TO_MD.get(units.lower())
-    if scale is None:
-        raise InputError(f"{where}: variable '{name}' has unknown units '{units}'; use 'mD'")
-    return scale
+    return _unit_scale(ds, name, where, PERMEABILITY_TO_MD, "mD", "'mD'")
 
 
 def _require_dims(ds: xr.Dataset, name: str, allowed: tuple[tuple[str, ...], ...], where: str) -> None:

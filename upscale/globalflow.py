@@ -33,7 +33,7 @@ from scipy.sparse.csgraph import connected_components
 
 from .errors import InputError
 from .field import FineArrays, arrays, validate
-from .tpfa import cell_geometry, half_transmissibility, transmissibilities
+from .tpfa import cell_geometry, check_faces, half_transmissibility, transmissibilities
 from .transmissibility import coarse_faces, transmissibility_constant
 
 log = logging.getLogger(__name__)
@@ -61,19 +61,12 @@ def _check_faces(face_t, axis: int, boundary_t):
     """Validate face/boundary arrays; returns (shape, faces, t_low, t_high) as float arrays."""
     if len(face_t) != 3:
         raise ValueError(f"face_t needs three arrays (x, y, z faces), got {len(face_t)}")
-    faces = [np.asarray(f, dtype=float) for f in face_t]
-    shape = list(faces[0].shape)
+    shape = list(np.shape(face_t[0]))
     if len(shape) != 3:
-        raise ValueError(f"face transmissibilities must be three-dimensional, got shape {faces[0].shape}")
+        raise ValueError(f"face transmissibilities must be three-dimensional, got shape {tuple(shape)}")
     shape[0] += 1
     shape = tuple(shape)
-    for a, f in enumerate(faces):
-        wanted = tuple(n - 1 if i == a else n for i, n in enumerate(shape))
-        if f.shape != wanted:
-            raise ValueError(f"face transmissibilities along {AXES[a]} have shape {f.shape}, "
-                             f"expected {wanted} for a grid of {shape}")
-        if not np.all(np.isfinite(f)) or np.any(f < 0):
-            raise ValueError(f"face transmissibilities along {AXES[a]} must be finite and >= 0")
+    faces = check_faces(face_t, shape)
     section = tuple(1 if i == axis else n for i, n in enumerate(shape))
     bounds = []
     for name, t in zip(("low", "high"), boundary_t):

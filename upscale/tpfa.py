@@ -52,3 +52,19 @@ def transmissibilities(k: tuple[np.ndarray, np.ndarray, np.ndarray], dx, dy, dz)
     volume, lengths = cell_geometry(dx, dy, dz)
     half = [half_transmissibility(k[a], volume, lengths[a]) for a in range(3)]
     return half, [face_transmissibility(half[a], a) for a in range(3)]
+
+
+def check_faces(face_t, shape) -> list[np.ndarray]:
+    """Interior-face transmissibilities per axis as float arrays, checked against a grid of
+    ``shape``: n - 1 faces along their own axis, finite and >= 0 (ValueError otherwise)."""
+    if len(face_t) != 3:
+        raise ValueError(f"face_t needs three arrays (x, y, z faces), got {len(face_t)}")
+    faces = [np.asarray(f, dtype=float) for f in face_t]
+    for a, f in enumerate(faces):
+        wanted = tuple(n - 1 if i == a else n for i, n in enumerate(shape))
+        if f.shape != wanted:
+            raise ValueError(f"face transmissibilities along {'xyz'[a]} have shape {f.shape}, "
+                             f"expected {wanted} for a grid of {tuple(shape)}")
+        if not np.all(np.isfinite(f)) or np.any(f < 0):
+            raise ValueError(f"face transmissibilities along {'xyz'[a]} must be finite and >= 0")
+    return faces

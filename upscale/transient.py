@@ -63,7 +63,7 @@ from scipy.sparse.csgraph import connected_components
 
 from .errors import InputError
 from .field import FineArrays, arrays, validate
-from .tpfa import cell_geometry, half_transmissibility, transmissibilities
+from .tpfa import cell_geometry, check_faces, half_transmissibility, transmissibilities
 from .globalflow import DIRECT_LIMIT
 from .transmissibility import coarse_faces, coarse_units, transmissibility_constant
 from .units import METRIC_TRANSMISSIBILITY
@@ -148,18 +148,9 @@ class TransientSystem:
             raise ValueError(f"drainage transmissibilities have shape {drain_t.shape}, expected {shape}")
         if not np.all(np.isfinite(drain_t)) or np.any(drain_t < 0):
             raise ValueError("drainage transmissibilities must be finite and >= 0")
-        if len(face_t) != 3:
-            raise ValueError(f"face_t needs three arrays (x, y, z faces), got {len(face_t)}")
         index = np.arange(math.prod(shape)).reshape(shape)
         first, second, value = [], [], []
-        for axis, t in enumerate(face_t):
-            t = np.asarray(t, dtype=float)
-            wanted = tuple(n - 1 if a == axis else n for a, n in enumerate(shape))
-            if t.shape != wanted:
-                raise ValueError(f"face transmissibilities along {AXES[axis]} have shape {t.shape}, "
-                                 f"expected {wanted}")
-            if not np.all(np.isfinite(t)) or np.any(t < 0):
-                raise ValueError(f"face transmissibilities along {AXES[axis]} must be finite and >= 0")
+        for axis, t in enumerate(check_faces(face_t, shape)):
             n = shape[axis]
             keep = t > 0
             first.append(np.take(index, np.arange(n - 1), axis=axis)[keep])
