@@ -314,3 +314,20 @@ def test_plot_writes_png_and_no_temporary_file(tmp_path):
     with pytest.raises(InputError):
         plot_layer_profile(stats, {"wrong": [0, 3]}, tmp_path / "other.png")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["profile.png"]
+
+
+def test_layers_command_line(tmp_path):
+    # The `upscale layers` verb end to end: a field of three known layer groups.
+    import subprocess
+    import sys
+
+    from upscale.field import fine_dataset, write
+
+    levels = np.repeat([2.0, 300.0, 20.0], [2, 5, 3])
+    k = np.broadcast_to(levels, (4, 3, 10)).copy()
+    write(fine_dataset(k, k, k, np.full(k.shape, 0.2), np.ones(4), np.ones(3), np.ones(10)), tmp_path / "f.nc")
+    done = subprocess.run([sys.executable, "-m", "upscale.cli", "layers", str(tmp_path / "f.nc"), "--target", "3",
+                           "--figure", str(tmp_path / "layers.png")], capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr
+    assert "optimal: edges [0, 2, 7, 10]" in done.stdout
+    assert (tmp_path / "layers.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

@@ -32,7 +32,9 @@ EXAMPLES = {
     "demo": "upscale demo            # writes fields/demo*.nc and reports/demo/",
     "check": "upscale check fields/demo.nc fields/demo_coarse.nc --report reports/demo",
     "layers": "upscale layers fields/demo.nc --target 10",
-    "bench": "upscale bench            # prints timings and ratios side by side",
+    "bench": """\
+        upscale bench                  # prints timings and ratios side by side
+        upscale bench --whole-model    # also the fine whole-model check (slow)""",
 }
 
 
@@ -122,6 +124,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = _add(sub, "bench", "time the upscaling against the plain per-block approach")
     p.add_argument("--shape", nargs=3, type=int, default=(60, 220, 85), metavar=("NX", "NY", "NZ"))
     p.add_argument("--sample", type=int, default=300, help="blocks timed with the plain loop")
+    p.add_argument("--whole-model", action="store_true", help="also time the fine whole-model steady check")
     return parser
 
 
@@ -233,7 +236,7 @@ def _layers(args) -> int:
 def _bench(args) -> int:
     from .bench import run_bench
 
-    run_bench(shape=tuple(args.shape), sample=args.sample, quiet=args.quiet)
+    run_bench(shape=tuple(args.shape), sample=args.sample, quiet=args.quiet, whole_model=args.whole_model)
     return 0
 
 
