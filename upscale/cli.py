@@ -11,8 +11,6 @@ import textwrap
 from contextlib import contextmanager
 from pathlib import Path
 
-import numpy as np
-
 from .errors import InputError
 from .version import tool_version
 
@@ -153,6 +151,8 @@ def _coarsen(args) -> int:
     fine = open_field(args.fine)
     edges = dict(args.edges)
     shape = tuple(fine.sizes[d] for d in ("x", "y", "z"))
+    import numpy as np
+
     coarse_shape = make_partition(shape, args.ratio, edges).shape
     work = int(np.prod(coarse_shape)) if "flow" in args.method else 0
     if args.multipliers:

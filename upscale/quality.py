@@ -146,6 +146,12 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
                      "fine": fine}
 
 
+def check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE) -> dict:
+    """``upscale.check``: every check of a coarse grid against its fine field, as the
+    JSON-ready metrics dict written to metrics.json (``metrics["global"]["x"]`` ...)."""
+    return check_models(fine, coarse, tolerance)[0]
+
+
 def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERANCE) -> dict:
     """``upscale check``: print the whole-model comparison; write the report if asked."""
     from .field import open_field
