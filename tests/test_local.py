@@ -337,3 +337,27 @@ def test_mirroring_field_and_partition_mirrors_the_result(spec, axis, bc):
     sign = np.ones(3)
     sign[axis] = -1
     np.testing.assert_allclose(np.flip(mirrored, axis), original * np.outer(sign, sign), rtol=1e-8, atol=1e-10)
+
+
+@settings(max_examples=25, deadline=None)
+@given(field_specs, st.floats(1e-3, 1e3), st.sampled_from(["sealed", "periodic", "linear"]),
+       st.permutations([0, 1, 2]))
+def test_invariants_over_random_fields_and_partitions(spec, factor, bc, order):
+    # Darcy's law is linear in k (scaling k by c scales every tensor by c); relabelling the
+    # axes of the field and of the partition relabels the tensor; full tensors are
+    # symmetric positive semi-definite; no NaN anywhere.
+    k, _, rng = _random_field(spec)
+    cells = make_cells(k)  # unit cells, so that axes can be relabelled
+    ratio = tuple(int(rng.integers(1, n + 1)) for n in k.shape)
+    part = make_partition(k.shape, ratio=ratio)
+    tensor = flow_tensors(cells, part, bc).tensor
+    assert np.all(np.isfinite(tensor))
+    scaled = flow_tensors(make_cells(factor * k), part, bc).tensor
+    np.testing.assert_allclose(scaled, factor * tensor, rtol=1e-8, atol=1e-12 * factor)
+    np.testing.assert_allclose(tensor, np.swapaxes(tensor, -1, -2), atol=1e-12)
+    assert np.all(np.linalg.eigvalsh(tensor) >= -1e-12 * max(1.0, np.abs(tensor).max()))
+    swapped = np.transpose(k, order)
+    swapped_part = make_partition(swapped.shape, edges={"xyz"[i]: part.edges[a].tolist() for i, a in enumerate(order)})
+    relabelled = flow_tensors(make_cells(swapped), swapped_part, bc).tensor
+    expected = np.transpose(tensor, order + [3, 4])[..., order, :][..., :, order]
+    np.testing.assert_allclose(relabelled, expected, rtol=1e-8, atol=1e-10)
