@@ -41,5 +41,5 @@ def test_demo_command_runs_end_to_end(tmp_path):
     assert "tz_multiplier" in coarse
     summary = (tmp_path / "reports" / "demo" / "summary.txt").read_text()
     assert "Caution" in summary and "qualified engineers" in summary
-    for line in done.stdout.splitlines()[1:]:
-        assert Path(line.split(maxsplit=1)[1]).exists()
+    listed = [line.split(maxsplit=1)[1] for line in done.stdout.splitlines() if line.startswith("  ")]
+    assert len(listed) == 6 and all(Path(p).exists() for p in listed)

@@ -100,5 +100,7 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     elapsed = time.perf_counter() - started
     print(f"upscale demo finished in {elapsed:.1f} s")
     for name, path in paths.items():
-        print(f"  {name:<8} {path}")
+        print(f"  {name:<12} {path}")
+    print(f"next: upscale check {paths['fine']} {paths['coarse']} --report {reports / 'check'}"
+          "   (whole-model flow checks and the full report; several minutes on this model)")
     return paths
