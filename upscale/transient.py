@@ -64,7 +64,7 @@ from scipy.sparse.csgraph import connected_components
 from .errors import InputError
 from .field import FineArrays, arrays, validate
 from .tpfa import cell_geometry, check_faces, half_transmissibility, transmissibilities
-from .globalflow import DIRECT_LIMIT
+from .globalflow import DIRECT_LIMIT, amg_preconditioner
 from .transmissibility import coarse_faces, coarse_units, transmissibility_constant
 from .units import METRIC_TRANSMISSIBILITY
 
@@ -397,9 +397,7 @@ class _StepSolver:
             solver = spla.splu(scaled, permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
                                options={"SymmetricMode": True})
         else:
-            import pyamg  # only the large models need it
-
-            solver = pyamg.smoothed_aggregation_solver(scaled, symmetry="symmetric").aspreconditioner(cycle="V")
+            solver = amg_preconditioner(scaled)
         entry = (A, scaled, scale, solver)
         self.cache[dt] = entry
         self.factorisations += 1
