@@ -6,6 +6,7 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import os
 import sys
 import textwrap
 from contextlib import contextmanager
@@ -265,5 +266,17 @@ def main(argv: list[str] | None = None) -> int:
         return 1
 
 
+def run() -> None:
+    """Console entry point. After an interrupt (exit code 130) the process ends at once,
+    streams flushed and temporary files already removed, so that a second Ctrl-C landing
+    in the interpreter's shutdown cannot turn the exit into a traceback or a signal death."""
+    code = main()
+    if code == 130:
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(130)
+    sys.exit(code)
+
+
 if __name__ == "__main__":
-    sys.exit(main())
+    run()
