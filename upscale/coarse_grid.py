@@ -17,7 +17,7 @@ from .errors import InputError
 from .field import FineArrays, arrays, validate
 from .local import BOUNDARY_CONDITIONS, flow_tensors
 from .partition import AXES, Partition, make_partition
-from .static import STATIC_METHODS, block_length, cardwell_parsons, static_average
+from .static import STATIC_METHODS, block_length, cardwell_parsons, divide_or_zero, static_average
 from .transmissibility import coarse_transmissibility, flow_transmissibility, multipliers as face_multipliers, unit_system
 from .version import tool_version
 
@@ -50,12 +50,6 @@ def _method_label(methods: tuple[str, str, str]) -> str:
     if len(set(methods)) == 1:
         return methods[0]
     return ", ".join(f"{a}: {m}" for a, m in zip(AXES, methods))
-
-
-def _ratio(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    out = np.zeros(np.broadcast(a, b).shape)
-    np.divide(a, b, out=out, where=b > 0)
-    return out
 
 
 def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flow",
@@ -158,8 +152,8 @@ def _volumes(cells: FineArrays, partition: Partition) -> dict[str, np.ndarray]:
     bulk = partition.block_sum(cells.bulk_volume)
     pore = partition.block_sum(cells.pore_volume)
     net = partition.block_sum(cells.ntg * cells.bulk_volume * cells.active)
-    ntg = _ratio(net, bulk)
-    porosity = _ratio(pore, net)
+    ntg = divide_or_zero(net, bulk)
+    porosity = divide_or_zero(pore, net)
     active = partition.block_sum(cells.active) > 0
     return {"bulk": bulk, "pore": pore, "ntg": ntg, "porosity": porosity, "active": active}
 
@@ -173,7 +167,7 @@ def _dataset(cells: FineArrays, partition: Partition, volumes, effective, full: 
     k = np.where(active[..., None, None], effective, 0.0)
     horizontal = np.array([[1, 1, 0], [1, 1, 0], [0, 0, 0]], dtype=bool)
     # Net convention: horizontal components are divided by ntg, vertical ones are effective.
-    net = np.where(horizontal, _ratio(k, ntg[..., None, None]), k)
+    net = np.where(horizontal, divide_or_zero(k, ntg[..., None, None]), k)
     cell = AXES
     data = {
         "dx": (("x",), dx, {"units": "m", "long_name": "coarse cell size along x"}),

@@ -15,7 +15,7 @@ from .partition import Partition
 STATIC_METHODS = ("arithmetic", "harmonic", "geometric", "power")
 
 
-def _ratio(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
+def divide_or_zero(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
     """numerator / denominator, 0 where the denominator is 0."""
     out = np.zeros(np.broadcast(numerator, denominator).shape)
     np.divide(numerator, denominator, out=out, where=denominator > 0)
@@ -31,12 +31,7 @@ def _resistance(conductance: np.ndarray) -> np.ndarray:
 
 def _conductance(resistance: np.ndarray) -> np.ndarray:
     """1 / resistance, 0 where the resistance is infinite."""
-    return _ratio(np.ones_like(resistance), np.where(np.isfinite(resistance), resistance, 0.0))
-
-
-def weighted_mean(values: np.ndarray, weight: np.ndarray, partition: Partition) -> np.ndarray:
-    """Weighted arithmetic mean of ``values`` over each block."""
-    return _ratio(partition.block_sum(weight * values), partition.block_sum(weight))
+    return divide_or_zero(np.ones_like(resistance), np.where(np.isfinite(resistance), resistance, 0.0))
 
 
 def power_average(k: np.ndarray, weight: np.ndarray, partition: Partition, omega: float) -> np.ndarray:
@@ -48,14 +43,14 @@ def power_average(k: np.ndarray, weight: np.ndarray, partition: Partition, omega
     k = np.asarray(k, dtype=float)
     total = partition.block_sum(weight)
     if omega > 0:
-        mean = _ratio(partition.block_sum(weight * k ** omega), total)
+        mean = divide_or_zero(partition.block_sum(weight * k ** omega), total)
         return mean ** (1.0 / omega)
     has_zero = partition.block_sum(weight * (k == 0)) > 0
     safe = np.where(k > 0, k, 1.0)
     if omega == 0:
-        out = np.exp(_ratio(partition.block_sum(weight * np.log(safe)), total))
+        out = np.exp(divide_or_zero(partition.block_sum(weight * np.log(safe)), total))
     else:
-        mean = _ratio(partition.block_sum(weight * safe ** omega), total)
+        mean = divide_or_zero(partition.block_sum(weight * safe ** omega), total)
         out = np.zeros_like(mean)
         np.power(mean, 1.0 / omega, out=out, where=mean > 0)
     return np.where(has_zero | (total <= 0), 0.0, out)
@@ -88,7 +83,7 @@ def block_length(partition: Partition, dx, dy, dz, axis: int) -> np.ndarray:
         return np.broadcast_to(sx[:, None, None], volume.shape)
     if axis == 1:
         return np.broadcast_to(sy[None, :, None], volume.shape)
-    return _ratio(volume, sx[:, None, None] * sy[None, :, None])
+    return divide_or_zero(volume, sx[:, None, None] * sy[None, :, None])
 
 
 def cardwell_parsons(k: np.ndarray, dx, dy, dz, partition: Partition, axis: int
@@ -110,5 +105,5 @@ def cardwell_parsons(k: np.ndarray, dx, dy, dz, partition: Partition, axis: int
     slice_resistance = _resistance(partition.cross_sum(conductance, axis))
     upper_g = _conductance(partition.line_sum(slice_resistance, axis))
     block_volume = partition.block_sum(volume)
-    scale = _ratio(block_length(partition, dx, dy, dz, axis) ** 2, block_volume)
+    scale = divide_or_zero(block_length(partition, dx, dy, dz, axis) ** 2, block_volume)
     return lower_g * scale, upper_g * scale
