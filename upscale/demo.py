@@ -11,32 +11,23 @@ from .coarse_grid import coarsen
 from .field import arrays, atomic_write, open_field, write
 from .figures import fine_coarse_maps, save
 from .partition import make_partition
-from .static import STATIC_METHODS, static_average
+from .quality import block_errors, coarse_effective
+from .report import CAUTION
 from .summary import field_summary, format_summary
 from .synthetic import demo_field
 from .transmissibility import barrier_summary, multiplier_csv
 
 DEMO_RATIO = (5, 5, 5)
-CAUTION = ("Caution: upscale is a screening and engineering tool. Its results are to be reviewed by "
-           "qualified engineers before they inform reserves, development or well decisions; local "
-           "regulations and licensed professional practice prevail.")
-
 
 def _static_versus_flow(cells, partition, coarse) -> str:
     """Text table: per direction, how far each static average is from the flow-based value."""
-    k_flow = cells.flow_permeability()
-    weight = cells.bulk_volume * cells.active
-    active = coarse["active"].values.astype(bool)
-    ntg = coarse["ntg"].values
-    flow = {"x": coarse["kx"].values * ntg, "y": coarse["ky"].values * ntg, "z": coarse["kz"].values}
+    _, errors = block_errors(cells, partition, coarse_effective(coarse))
     lines = ["Static averages against flow-based (sealed) permeability, per coarse block:",
              f"{'direction':<10}{'method':<12}{'median |error|':>16}{'worst |error|':>15}{'blocks >10%':>13}"]
-    for axis, name in enumerate("xyz"):
-        reference = flow[name][active]
-        good = reference > 0
-        for method in STATIC_METHODS[:3]:
-            value = static_average(k_flow[axis], weight, partition, method)[active]
-            error = np.abs(value[good] / reference[good] - 1.0)
+    for name in "xyz":
+        valid = errors[name]["valid"]
+        for method, result in errors[name]["static"].items():
+            error = np.abs(result["error"][valid])
             lines.append(f"{name:<10}{method:<12}{np.median(error):>15.1%}{error.max():>15.1%}"
                          f"{int((error > 0.1).sum()):>13d}")
     return "\n".join(lines)
@@ -75,7 +66,7 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     cells = arrays(fine)
     partition = make_partition(cells.shape, ratio=DEMO_RATIO)
     active_fine = partition.expand(coarse["active"].values.astype(bool))
-    kx_effective = partition.expand(coarse["kx"].values * coarse["ntg"].values)
+    kx_effective = partition.expand(coarse_effective(coarse)[0])
     save(fine_coarse_maps(cells.kx * cells.ntg, cells.active, kx_effective, active_fine,
                           layer=cells.shape[2] // 3, section_y=cells.shape[1] // 2, label="kx * ntg"),
          paths["figure"])
@@ -85,7 +76,7 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     text = "\n\n".join([
         f"upscale demo: {fine.attrs.get('title', 'synthetic sector')}",
         str(fine.attrs.get("scenario", "")),
-        CAUTION,
+        "Caution: " + CAUTION,
         "Fine field\n" + format_summary(field_summary(fine)),
         f"Coarse grid: ratio {DEMO_RATIO}, method {coarse.attrs['method']}, boundary condition "
         f"{coarse.attrs['boundary_condition']}; {coarse.sizes['x']} x {coarse.sizes['y']} x "

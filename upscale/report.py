@@ -186,11 +186,11 @@ def build_report(folder, metrics: dict, arrays: dict) -> dict[str, Path]:
 
     from . import figures
     from .layering import layer_profile_figure, layer_statistics
+    from .quality import coarse_effective
 
     cells, partition, coarse = arrays["cells"], arrays["partition"], arrays["coarse"]
     errors = arrays["blocks"]
-    ntg = coarse["ntg"].values
-    coarse_k = {"x": coarse["kx"].values * ntg, "y": coarse["ky"].values * ntg, "z": coarse["kz"].values}
+    coarse_k = dict(zip(("x", "y", "z"), coarse_effective(coarse)))
     fine_k = dict(zip(("x", "y", "z"), cells.flow_permeability()))
     active_fine = partition.expand(coarse["active"].values.astype(bool))
     layer, section = cells.shape[2] // 3, cells.shape[1] // 2
@@ -202,6 +202,22 @@ def build_report(folder, metrics: dict, arrays: dict) -> dict[str, Path]:
                               {a: (coarse_k[a].ravel(), bulk.ravel()) for a in coarse_k})
     worst = max(("x", "y", "z"), key=lambda a: metrics["blocks"][a]["methods"]["arithmetic"]["flagged_blocks"])
     error = errors[worst]["static"]["arithmetic"]
+
+    profile = transient_figure = multiplier_figure = ""
+    layering = metrics.get("layering")
+    if layering:
+        groupings = {name: judged["edges"] for name, judged in layering.items() if "edges" in judged}
+        profile = figure_html(layer_profile_figure(layer_statistics(cells), groupings),
+                              "Fine-layer profile with the group boundaries.")
+    transient = metrics.get("transient")
+    if transient and "times" in transient:
+        transient_figure = figure_html(figures.transient_curves(transient),
+                                       "Drainage rate and cumulative volume, fine and coarse.")
+    if metrics.get("multipliers") and coarse.sizes["z"] > 1:
+        face_layer = min(coarse_layer, coarse.sizes["z"] - 2)
+        multiplier_figure = figure_html(
+            figures.multiplier_map(coarse["tz_multiplier"].values[:, :, face_layer], "z", face_layer),
+            "Vertical multipliers on one layer of coarse faces.")
     sections = [
         ("Whole-model check", _global_section(metrics)
          + figure_html(figures.whole_model_bars(metrics["global"]), "Whole-model effective permeability, fine and coarse.")),
@@ -212,22 +228,8 @@ def build_report(folder, metrics: dict, arrays: dict) -> dict[str, Path]:
          + figure_html(figures.error_map(error["error"][:, :, coarse_layer], errors[worst]["valid"][:, :, coarse_layer],
                                          f"arithmetic vs flow along {worst}, coarse layer {coarse_layer}"),
                        f"Relative error of the arithmetic average along {worst} (the direction with most flagged blocks).")),
-        ("Layering", _layering_section(metrics)),
-        ("Transient drainage check", _transient_section(metrics)),
-        ("Transmissibility multipliers", _multiplier_section(metrics)),
+        ("Layering", _layering_section(metrics) + profile),
+        ("Transient drainage check", _transient_section(metrics) + transient_figure),
+        ("Transmissibility multipliers", _multiplier_section(metrics) + multiplier_figure),
     ]
-    layering = metrics.get("layering")
-    if layering:
-        groupings = {name: judged["edges"] for name, judged in layering.items() if "edges" in judged}
-        sections[3] = ("Layering", sections[3][1] + figure_html(
-            layer_profile_figure(layer_statistics(cells), groupings), "Fine-layer profile with the group boundaries."))
-    transient = metrics.get("transient")
-    if transient and "times" in transient:
-        sections[4] = (sections[4][0], sections[4][1] + figure_html(figures.transient_curves(transient),
-                                                                    "Drainage rate and cumulative volume, fine and coarse."))
-    if metrics.get("multipliers") and coarse.sizes["z"] > 1:
-        face_layer = min(coarse_layer, coarse.sizes["z"] - 2)
-        sections[5] = (sections[5][0], sections[5][1] + figure_html(
-            figures.multiplier_map(coarse["tz_multiplier"].values[:, :, face_layer], "z", face_layer),
-            "Vertical multipliers on one layer of coarse faces."))
     return write_report(folder, "upscale check report", _header(metrics), sections, metrics)
