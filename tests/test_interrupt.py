@@ -74,17 +74,24 @@ def _writing(folder: Path, out: Path):
 MAKE_FIELD = ("make-field", "lognormal", "--shape", "100", "100", "100", "--seed", "3")
 
 
-def test_sigkill_while_writing_leaves_no_output(tmp_path, cli_command, cli_env):
+def _signal_while_writing(tmp_path, cli_command, cli_env, sig) -> tuple[Path, int, str]:
+    """Start a large make-field, send ``sig`` once its temporary file has data; returns
+    (output path, exit code, stderr), having checked that the write was under way."""
     out = tmp_path / "big.nc"
     proc = _start([*MAKE_FIELD, "-o", str(out)], tmp_path, cli_command, cli_env)
     try:
         part = _wait_for(lambda: _writing(tmp_path, out), proc)
         still_running = proc.poll() is None
-        proc.send_signal(signal.SIGKILL)
+        proc.send_signal(sig)
     finally:
         returncode, stderr = _finish(proc)
     assert part is not None and still_running, (
         f"never saw the process writing its temporary file (exit {returncode}): {stderr}")
+    return out, returncode, stderr
+
+
+def test_sigkill_while_writing_leaves_no_output(tmp_path, cli_command, cli_env):
+    out, returncode, _ = _signal_while_writing(tmp_path, cli_command, cli_env, signal.SIGKILL)
     assert returncode == -signal.SIGKILL
     assert not out.exists(), "a killed write left a file at the output path"
     # Nothing can clean up after SIGKILL: the temporary may stay, but only under its own name.
@@ -94,16 +101,7 @@ def test_sigkill_while_writing_leaves_no_output(tmp_path, cli_command, cli_env):
 
 
 def test_ctrl_c_while_writing_cleans_up(tmp_path, cli_command, cli_env):
-    out = tmp_path / "big.nc"
-    proc = _start([*MAKE_FIELD, "-o", str(out)], tmp_path, cli_command, cli_env)
-    try:
-        part = _wait_for(lambda: _writing(tmp_path, out), proc)
-        still_running = proc.poll() is None
-        proc.send_signal(signal.SIGINT)
-    finally:
-        returncode, stderr = _finish(proc)
-    assert part is not None and still_running, (
-        f"never saw the process writing its temporary file (exit {returncode}): {stderr}")
+    out, returncode, stderr = _signal_while_writing(tmp_path, cli_command, cli_env, signal.SIGINT)
     assert "Traceback" not in stderr, stderr
     assert returncode == 130, stderr
     assert "interrupted" in stderr, stderr
