@@ -10,7 +10,8 @@ import scipy.sparse.linalg as spla
 from upscale.coarse_grid import coarsen
 from upscale.field import arrays, fine_dataset, validate
 from upscale.globalflow import (AT_HIGH, AT_LOW, ISOLATED, SOLVED, assemble_pressure_system,
-                                cell_status, coarse_model_check, fine_model_check, solve_pressure,
+                                cell_status, coarse_model_check, fine_model_check, fine_model_checks,
+                                solve_pressure,
                                 steady_check, whole_model_permeability)
 from upscale.tpfa import transmissibilities
 
@@ -318,3 +319,15 @@ def test_whole_model_permeability_divides_out_a_constant():
     scaled = whole_model_permeability([c * f for f in faces], (c * half[1][:, :1], c * half[1][:, -1:]),
                                       cells.dx, cells.dy, cells.dz, "y", constant=c)
     assert scaled["k"] == pytest.approx(arithmetic(K, H), rel=1e-10)  # Bear (1972) ch. 5
+
+
+def test_axes_on_worker_processes_match_one_process():
+    # The three axes are independent solves; forked workers must give the same answer (to
+    # round-off: the workers' BLAS may sum in another order).
+    cells = arrays(lognormal(shape=(14, 12, 10)))
+    here = fine_model_checks(cells, direct_limit=0, workers=1)
+    forked = fine_model_checks(cells, direct_limit=0, workers=2)
+    for a, b in zip(here, forked):
+        assert a["solver"]["method"] == b["solver"]["method"] == "amg-cg"
+        assert a["k"] == pytest.approx(b["k"], rel=1e-12)
+        np.testing.assert_allclose(a["pressure"], b["pressure"], rtol=0, atol=1e-9)  # solve tolerance 1e-10

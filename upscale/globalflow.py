@@ -24,6 +24,9 @@ from __future__ import annotations
 
 import logging
 import math
+import multiprocessing
+import os
+import signal
 
 import numpy as np
 import scipy.sparse as sp
@@ -33,6 +36,7 @@ from scipy.sparse.csgraph import connected_components
 
 from .errors import InputError
 from .field import FineArrays, arrays, validate
+from .multigrid import VCycle
 from .tpfa import cell_geometry, check_faces, half_transmissibility, transmissibilities
 from .transmissibility import coarse_faces, transmissibility_constant
 
@@ -195,10 +199,10 @@ def solve_pressure(A, b, tolerance: float = 1e-10, direct_limit: int = DIRECT_LI
     Rows with only a diagonal entry (pinned cells) are solved directly and removed. The rest
     is scaled symmetrically to unit diagonal, D^-1/2 A D^-1/2, which evens out permeability
     contrasts, then solved by sparse LU (SuperLU) when it has at most ``direct_limit``
-    unknowns, otherwise by conjugate gradients preconditioned with a pyamg smoothed
-    aggregation V-cycle. Either way the true relative residual ||b - A p|| / ||b|| of the
-    unscaled system is computed; the direct solve is refined and the iterative one
-    restarted with a tighter tolerance (a few times at most) until it is <= ``tolerance``.
+    unknowns, otherwise by conjugate gradients preconditioned with a smoothed-aggregation
+    V-cycle (:class:`upscale.multigrid.VCycle`). Either way the true relative residual
+    ||b - A p|| / ||b|| of the unscaled system is computed; the direct solve is refined and
+    the iterative one restarted with a tighter tolerance (a few times at most) until it is <= ``tolerance``.
 
     info: 'method' ('direct', 'amg-cg' or 'trivial'), 'relative_residual', 'iterations'
     (CG iterations, or refinement steps for the direct solve), 'unknowns', 'converged'.
@@ -254,23 +258,8 @@ def _direct(A, scaled, scale, b, tolerance, refinements: int = 3):
     return p, steps
 
 
-def amg_preconditioner(matrix):
-    """A smoothed-aggregation V-cycle (pyamg) for a symmetric positive definite matrix.
-
-    Forward Gauss-Seidel before and backward after keeps the cycle symmetric (as CG needs)
-    at half the cost of symmetric sweeps on both sides: measured on the 1.12 M-cell
-    benchmark field, 22.6 s instead of 28.9 s per solve for a similar iteration count.
-    """
-    import pyamg  # imported here: only the large models need it
-
-    ml = pyamg.smoothed_aggregation_solver(matrix, symmetry="symmetric",
-                                           presmoother=("gauss_seidel", {"sweep": "forward"}),
-                                           postsmoother=("gauss_seidel", {"sweep": "backward"}))
-    return ml.aspreconditioner(cycle="V")
-
-
 def _amg_cg(A, scaled, scale, b, tolerance, restarts: int = 6, maxiter: int = 1000):
-    M = amg_preconditioner(scaled)
+    M = VCycle(scaled)
     bs = scale * b
     y = np.zeros_like(bs)
     iterations = 0
@@ -375,6 +364,53 @@ def fine_model_check(cells: FineArrays, axis, tolerance: float = 1e-10, direct_l
                                     cells.dz, axis, tolerance=tolerance, direct_limit=direct_limit)
 
 
+_SHARED_CELLS: FineArrays | None = None  # the field the forked workers of fine_model_checks read
+
+
+def _fine_axis(args) -> dict:
+    axis, tolerance, direct_limit = args
+    return fine_model_check(_SHARED_CELLS, axis, tolerance=tolerance, direct_limit=direct_limit)
+
+
+def _ignore_interrupt() -> None:
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles Ctrl-C and ends the workers
+
+
+def worker_count() -> int:
+    """Processes for the three axes of the fine check: one per usable core, at most three."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(3, cores))
+
+
+def fine_model_checks(cells: FineArrays, tolerance: float = 1e-10, direct_limit: int = DIRECT_LIMIT,
+                      workers: int | None = None) -> list[dict]:
+    """:func:`fine_model_check` along x, y and z; the three axes are independent, so a
+    model too large for the direct solver is run on up to ``workers`` forked processes
+    (default :func:`worker_count`), each solving whole axes: the results are those of one
+    process to round-off (the workers' BLAS may sum in another order). Small models, and platforms without fork, run in this process."""
+    global _SHARED_CELLS
+    workers = worker_count() if workers is None else max(1, int(workers))
+    jobs = [(axis, tolerance, direct_limit) for axis in range(3)]
+    forkable = "fork" in multiprocessing.get_all_start_methods()
+    if workers == 1 or not forkable or math.prod(cells.shape) <= direct_limit:
+        return [fine_model_check(cells, axis, tolerance=tolerance, direct_limit=direct_limit) for axis in range(3)]
+    _SHARED_CELLS = cells  # inherited by the forked workers, not pickled
+    pool = multiprocessing.get_context("fork").Pool(min(workers, 3), initializer=_ignore_interrupt)
+    try:
+        results = pool.map(_fine_axis, jobs, chunksize=1)
+        pool.close()
+        return results
+    except BaseException:
+        pool.terminate()  # Ctrl-C or a failure: stop the other axes at once
+        raise
+    finally:
+        pool.join()
+        _SHARED_CELLS = None
+
+
 def coarse_model_check(coarse: xr.Dataset, axis, tolerance: float = 1e-10,
                        direct_limit: int = DIRECT_LIMIT) -> dict:
     """Whole-model flow check of a coarse grid along ``axis``.
@@ -460,8 +496,9 @@ def steady_check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = 1e-10,
     starts = _fine_index_map(coarse, cells.shape)
     bulk = cells.bulk_volume
     result = {"global": {}, "layer_flow_share": {}, "pressure_rms": {}}
+    fine_results = fine_model_checks(cells, tolerance=tolerance, direct_limit=direct_limit)
     for axis, name in enumerate(AXES):
-        f = fine_model_check(cells, axis, tolerance=tolerance, direct_limit=direct_limit)
+        f = fine_results[axis]
         c = coarse_model_check(coarse, axis, tolerance=tolerance, direct_limit=direct_limit)
         error = (c["k"] - f["k"]) / f["k"] if f["k"] != 0 else None
         result["global"][name] = {
