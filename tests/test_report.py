@@ -79,3 +79,23 @@ def test_report_renders_in_a_headless_browser(report, tmp_path):
     pixels = imread(shot)[..., :3]
     colours = np.unique((pixels.reshape(-1, 3) * 255).astype(np.uint8), axis=0)
     assert len(colours) > 500  # rendered figures, not just text on white
+
+
+@pytest.mark.parametrize("option, words", [
+    (("--steps-per-doubling", "3"), "steps per doubling"),
+    (("--compressibility", "-1"), "compressibility"),
+    (("--viscosity", "0"), "viscosity"),
+    (("--face", "w-"), "face"),
+    (("--drainage", "well", "--well-column", "99", "0"), "well column"),
+])
+def test_check_refuses_bad_transient_options_before_solving(report, option, words):
+    folder, _ = report
+    out = folder / f"refused{option[1]}"
+    done = subprocess.run([sys.executable, "-m", "upscale.cli", "check", str(folder / "fine.nc"),
+                           str(folder / "coarse.nc"), "--report", str(out), *option],
+                          capture_output=True, text=True, timeout=300)
+    assert done.returncode == 2
+    last = done.stderr.strip().splitlines()[-1]
+    assert last.startswith("upscale: error:") and words in last
+    assert "whole-model" not in done.stdout  # nothing solved or printed before the refusal
+    assert not out.exists()

@@ -10,7 +10,7 @@ import pytest
 from upscale.coarse_grid import coarsen
 from upscale.errors import InputError
 from upscale.field import arrays, fine_dataset, validate
-from upscale.transient import (TransientSystem, simulate, time_grid, time_scale, transient_check,
+from upscale.transient import (TransientSystem, projected_guess, simulate, time_grid, time_scale, transient_check,
                                well_factors)
 from upscale.units import METRIC_TRANSMISSIBILITY
 
@@ -236,3 +236,24 @@ def test_iterative_solver_agrees_with_direct():
     assert direct["solver"]["method"] == "direct" and iterative["solver"]["method"] == "amg-cg"
     np.testing.assert_allclose(iterative["cumulative"], direct["cumulative"], rtol=1e-8)
     assert iterative["balance_error"] < 1e-8
+
+
+def test_projected_guess_is_the_best_approximation_in_the_span():
+    # Galerkin projection: with the exact solution in the span it is recovered; otherwise the
+    # A-norm error is no larger than from any vector of the span (Fischer 1998, from memory).
+    rng = np.random.default_rng(4)
+    M = rng.normal(size=(40, 40))
+    A = M @ M.T + 40 * np.eye(40)
+    x = rng.normal(size=40)
+    b = A @ x
+    others = [rng.normal(size=40) for _ in range(3)]
+    np.testing.assert_allclose(projected_guess(A, b, [others[0], x, others[1], 2 * x]), x, rtol=1e-10)
+    guess = projected_guess(A, b, others)
+
+    def energy(v):
+        return float((v - x) @ A @ (v - x))
+
+    for _ in range(20):
+        trial = sum(c * v for c, v in zip(rng.normal(size=3), others))
+        assert energy(guess) <= energy(trial) + 1e-9
+    assert np.array_equal(projected_guess(A, b, [np.zeros(40)]), np.zeros(40))

@@ -112,6 +112,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("fine")
     p.add_argument("coarse")
     p.add_argument("--report", help="folder for index.html and metrics.json")
+    p.add_argument("--drainage", choices=("face", "well"), default="face",
+                   help="transient check: drain through a model face or a vertical well (default face)")
+    p.add_argument("--face", default="x-", help="drained face: x-, x+, y-, y+, z- or z+ (default x-)")
+    p.add_argument("--well-column", nargs=2, type=int, metavar=("I", "J"),
+                   help="fine column of the well (default: the grid centre)")
+    p.add_argument("--compressibility", type=float, default=1e-4,
+                   help="total compressibility in 1/bar (default 1e-4)")
+    p.add_argument("--viscosity", type=float, default=1.0, help="viscosity in cP (default 1)")
+    p.add_argument("--steps-per-doubling", type=int, default=8,
+                   help="implicit Euler steps per doubling of time (even, default 8)")
 
     p = _add(sub, "layers", "judge a grouping of fine layers and propose the best one")
     p.add_argument("fine")
@@ -216,7 +226,10 @@ def _demo(args) -> int:
 def _check(args) -> int:
     from .quality import run_check
 
-    run_check(args.fine, args.coarse, args.report)
+    transient = {"drainage": args.drainage, "face": args.face, "column": args.well_column,
+                 "compressibility": args.compressibility, "viscosity": args.viscosity,
+                 "steps_per_doubling": args.steps_per_doubling}
+    run_check(args.fine, args.coarse, args.report, transient=transient)
     return 0
 
 

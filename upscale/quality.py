@@ -103,8 +103,11 @@ def _layering(cells: FineArrays, partition: Partition) -> dict:
 
 
 def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE,
-                 drainage: str = "face") -> tuple[dict, dict]:
+                 transient: dict | None = None) -> tuple[dict, dict]:
     """Every check of a coarse grid against its fine field.
+
+    ``transient``: keyword arguments of :func:`upscale.transient.transient_check` (drainage,
+    face, column, compressibility, viscosity, steps_per_doubling, ...).
 
     Returns (metrics, arrays): metrics is JSON-ready (see README: global, layer_flow_share,
     pressure_rms, transient, blocks, layering, multipliers, pore_volume); arrays holds what
@@ -112,19 +115,20 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
     """
     from .field import arrays as fine_arrays, validate
     from .globalflow import steady_check
-    from .transient import transient_check
+    from .transient import check_options, transient_check
     from .transmissibility import barrier_summary
 
     fine = validate(fine, where="fine field")
     coarse = validate(coarse, where="coarse grid")
     cells = fine_arrays(fine)
     partition = coarse_partition(coarse, cells.shape)
+    check_options(coarse, cells.shape, **(transient or {}))  # fail before the long solves
     metrics = steady_check(fine, coarse)
     flow_k, source = flow_reference(cells, partition, coarse)
     blocks, block_arrays = block_errors(cells, partition, flow_k, tolerance)
     blocks["flow_reference"] = source
     metrics["blocks"] = blocks
-    metrics["transient"] = transient_check(fine, coarse, drainage=drainage)
+    metrics["transient"] = transient_check(fine, coarse, **(transient or {}))
     metrics["layering"] = _layering(cells, partition) if cells.shape[2] > 1 else None
     fine_pv = float(cells.pore_volume.sum())
     coarse_pv = float(coarse["pore_volume"].values.sum())
@@ -146,19 +150,21 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
                      "fine": fine}
 
 
-def check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE) -> dict:
+def check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE,
+          transient: dict | None = None) -> dict:
     """``upscale.check``: every check of a coarse grid against its fine field, as the
     JSON-ready metrics dict written to metrics.json (``metrics["global"]["x"]`` ...)."""
-    return check_models(fine, coarse, tolerance)[0]
+    return check_models(fine, coarse, tolerance, transient)[0]
 
 
-def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERANCE) -> dict:
+def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERANCE,
+              transient: dict | None = None) -> dict:
     """``upscale check``: print the whole-model comparison; write the report if asked."""
     from .field import open_field
 
     fine = open_field(fine_path)
     coarse = open_field(coarse_path)
-    metrics, arrays = check_models(fine, coarse, tolerance)
+    metrics, arrays = check_models(fine, coarse, tolerance, transient)
     print(format_check(metrics))
     if report_dir is not None:
         from .report import build_report

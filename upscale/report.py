@@ -162,7 +162,16 @@ def _layering_section(metrics: dict) -> str:
 def _transient_section(metrics: dict) -> str:
     t = metrics.get("transient") or {}
     setup = t.get("drainage") or {}
-    rows = [["drainage", setup.get("kind", setup) if isinstance(setup, dict) else setup],
+    if setup.get("type") == "well":
+        where = f"well in fine column {setup.get('column')} (coarse column {setup.get('coarse_column')})"
+    else:
+        where = f"constant-pressure face {setup.get('face')}"
+    times = t.get("times") or []
+    rows = [["drainage", where],
+            ["pressures (bar): initial, drainage", f"{t.get('p_initial_bar')}, {t.get('p_drain_bar')}"],
+            ["total compressibility (1/bar), viscosity (cP)",
+             f"{t.get('compressibility_per_bar')}, {t.get('viscosity_cP')}"],
+            ["time steps (the same for both models)", len(times)],
             ["relative error of the final cumulative volume", t.get("final_cumulative_relative_error")],
             ["pore volume, relative difference", t.get("pore_volume_relative_difference")],
             ["fine: drained fraction at the end", (t.get("fine") or {}).get("drained_fraction_end")],
