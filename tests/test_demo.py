@@ -1,10 +1,12 @@
 """The README's two setup commands and the demo they run."""
 
+import json
 import re
 import subprocess
 import sys
 from pathlib import Path
 
+import pytest
 import xarray as xr
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -42,4 +44,16 @@ def test_demo_command_runs_end_to_end(tmp_path):
     summary = (tmp_path / "reports" / "demo" / "summary.txt").read_text()
     assert "Caution" in summary and "qualified engineers" in summary
     listed = [line.split(maxsplit=1)[1] for line in done.stdout.splitlines() if line.startswith("  ")]
-    assert len(listed) == 6 and all(Path(p).exists() for p in listed)
+    assert len(listed) == 8 and all(Path(p).exists() for p in listed)
+    # The demo ends with the full report and prints where it is.
+    report = tmp_path / "reports" / "demo" / "index.html"
+    assert done.stdout.splitlines()[-1].startswith(f"report: {report}")
+    page = report.read_text()
+    assert page.count("<img") >= 8 and "qualified" in page
+    metrics = json.loads((tmp_path / "reports" / "demo" / "metrics.json").read_text())
+    for axis in "xyz":
+        g = metrics["global"][axis]
+        assert g["fine_k"] > 0 and g["fine_residual"] <= 1e-10
+        assert g["relative_error"] == pytest.approx((g["coarse_k"] - g["fine_k"]) / g["fine_k"])
+    assert metrics["transient"]["fine"]["balance_error"] < 1e-6
+    assert metrics["multipliers"]["z"]["faces"] > 0
