@@ -461,6 +461,13 @@ class _StepSolver:
         return x, dt
 
 
+def _check_fluid(compressibility: float, viscosity: float) -> None:
+    """InputError unless the total compressibility (1/bar) and viscosity (cP) are > 0."""
+    for name, value in (("compressibility", compressibility), ("viscosity", viscosity)):
+        if not (np.isfinite(value) and value > 0):
+            raise InputError(f"{name} must be > 0, got {value}")
+
+
 def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_INITIAL,
              p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
              viscosity: float = DEFAULT_VISCOSITY, keep_pressures: bool = False,
@@ -488,9 +495,7 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
     times = np.asarray(times_days, dtype=float).ravel()
     if times.size == 0 or not np.all(np.isfinite(times)) or times[0] <= 0 or np.any(np.diff(times) <= 0):
         raise InputError("times must be finite, > 0 and strictly increasing (days)")
-    for name, value in (("compressibility", compressibility), ("viscosity", viscosity)):
-        if not (np.isfinite(value) and value > 0):
-            raise InputError(f"{name} must be > 0, got {value}")
+    _check_fluid(compressibility, viscosity)
     for name, value in (("initial pressure", p_initial), ("drainage pressure", p_drain)):
         if not np.isfinite(value):
             raise InputError(f"{name} must be finite, got {value}")
@@ -626,9 +631,7 @@ def check_options(coarse: xr.Dataset, fine_shape, drainage: str = "face", face: 
     else:
         _face(face)
         fine_starts(coarse, fine_shape, required=False)
-    for name, value in (("compressibility", compressibility), ("viscosity", viscosity)):
-        if not (np.isfinite(value) and value > 0):
-            raise InputError(f"{name} must be > 0, got {value}")
+    _check_fluid(compressibility, viscosity)
     try:
         first, end = (float(v) for v in span)
     except (TypeError, ValueError):
