@@ -140,3 +140,19 @@ def test_ctrl_c_during_coarsen_flow(tmp_path, flow_field, cli_command, cli_env):
     assert not out.exists()
     assert _parts(tmp_path, out) == []
     assert sorted(p.name for p in tmp_path.iterdir()) == ["fine.nc"]
+
+
+def test_interrupt_is_held_until_the_write_block_ends():
+    # A Ctrl-C inside the block must not cut it short (a lock taken by the NetCDF layer
+    # could stay held); it is raised once the block is done, and the old handler is back.
+    before = signal.getsignal(signal.SIGINT)
+    finished = []
+    with pytest.raises(KeyboardInterrupt):
+        with field.interrupt_after():
+            os.kill(os.getpid(), signal.SIGINT)
+            time.sleep(0.05)
+            finished.append(True)
+    assert finished == [True]
+    assert signal.getsignal(signal.SIGINT) is before
+    with field.interrupt_after():  # no signal: nothing raised
+        pass

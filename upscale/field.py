@@ -12,7 +12,10 @@ import hashlib
 import os
 import select
 import signal
+import sys
 import tempfile
+import threading
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -358,13 +361,45 @@ def check_output_path(path: str | os.PathLike, inputs: tuple = ()) -> Path:
     return path
 
 
+@contextmanager
+def interrupt_after():
+    """Hold Ctrl-C (SIGINT) back until the block has finished, then raise KeyboardInterrupt.
+
+    A KeyboardInterrupt raised inside the NetCDF library's Python layer can land between
+    taking a file lock and the code that releases it; closing the file then waits on that
+    lock for ever (seen once in CI as a hung Ctrl-C test). Outside the main thread, where
+    no signal handler can be set, the block runs unguarded.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    received = []
+
+    def hold(signum, frame):
+        if not received:
+            print("upscale: interrupt received; stopping once the file being written is closed",
+                  file=sys.stderr, flush=True)
+        received.append(signum)
+
+    previous = signal.signal(signal.SIGINT, hold)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+    if received:
+        raise KeyboardInterrupt
+
+
 def atomic_write(path: str | os.PathLike, write_to) -> Path:
-    """Call ``write_to(temporary_path)`` next to ``path`` and rename it into place when complete."""
+    """Call ``write_to(temporary_path)`` next to ``path`` and rename it into place when
+    complete; Ctrl-C during the call ends it cleanly (:func:`interrupt_after`) and the
+    temporary file is removed."""
     path = Path(path)
     handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     os.close(handle)
     try:
-        write_to(temporary)
+        with interrupt_after():
+            write_to(temporary)
         umask = os.umask(0)
         os.umask(umask)
         os.chmod(temporary, 0o666 & ~umask)  # mkstemp creates 0600; give the usual permissions
