@@ -25,6 +25,8 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from numba import njit
 
+SETUP_SEED = 20261202
+
 
 class VCycle(spla.LinearOperator):
     """One V-cycle of a smoothed-aggregation hierarchy of the SPD matrix ``matrix`` (CSR)."""
@@ -32,7 +34,14 @@ class VCycle(spla.LinearOperator):
     def __init__(self, matrix):
         import pyamg  # imported here: only the large models need it
 
-        hierarchy = pyamg.smoothed_aggregation_solver(sp.csr_matrix(matrix), symmetry="symmetric")
+        # pyamg estimates spectral radii from random start vectors drawn from numpy's global
+        # generator: seed it for the set-up (and restore it) so that results repeat exactly.
+        state = np.random.get_state()
+        np.random.seed(SETUP_SEED)
+        try:
+            hierarchy = pyamg.smoothed_aggregation_solver(sp.csr_matrix(matrix), symmetry="symmetric")
+        finally:
+            np.random.set_state(state)
         levels = hierarchy.levels
         self.operators = [sp.csr_matrix(level.A).sorted_indices() for level in levels]
         self.prolongators = [sp.csr_matrix(level.P) for level in levels[:-1]]
