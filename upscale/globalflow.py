@@ -202,7 +202,8 @@ def solve_pressure(A, b, tolerance: float = 1e-10, direct_limit: int = DIRECT_LI
     unknowns, otherwise by conjugate gradients preconditioned with a smoothed-aggregation
     V-cycle (:class:`upscale.multigrid.VCycle`). Either way the true relative residual
     ||b - A p|| / ||b|| of the unscaled system is computed; the direct solve is refined and
-    the iterative one restarted with a tighter tolerance (a few times at most) until it is <= ``tolerance``.
+    the iterative one restarted with a tighter tolerance (a few times at most) until it is
+    <= ``tolerance``.
 
     info: 'method' ('direct', 'amg-cg' or 'trivial'), 'relative_residual', 'iterations'
     (CG iterations, or refinement steps for the direct solve), 'unknowns', 'converged'.
@@ -389,8 +390,8 @@ def fine_model_checks(cells: FineArrays, tolerance: float = 1e-10, direct_limit:
                       workers: int | None = None) -> list[dict]:
     """:func:`fine_model_check` along x, y and z; the three axes are independent, so a
     model too large for the direct solver is run on up to ``workers`` forked processes
-    (default :func:`worker_count`), each solving whole axes: the results are those of one
-    process to round-off (the workers' BLAS may sum in another order). Small models, and platforms without fork, run in this process."""
+    (default :func:`worker_count`), each solving whole axes, with the results of one
+    process. Small models, and platforms without fork, run in this process."""
     global _SHARED_CELLS
     workers = worker_count() if workers is None else max(1, int(workers))
     jobs = [(axis, tolerance, direct_limit) for axis in range(3)]
