@@ -1,6 +1,6 @@
 """Tests of upscale.multigrid: the V-cycle must be a symmetric positive definite operator
 (conjugate gradients needs both; Saad 2003, Iterative Methods for Sparse Linear Systems,
-section 9.2) and a useful approximate inverse."""
+section 9.2, from memory) and a useful approximate inverse."""
 
 import numpy as np
 import pytest
