@@ -229,7 +229,7 @@ def _check(args) -> int:
     transient = {"drainage": args.drainage, "face": args.face, "column": args.well_column,
                  "compressibility": args.compressibility, "viscosity": args.viscosity,
                  "steps_per_doubling": args.steps_per_doubling}
-    run_check(args.fine, args.coarse, args.report, transient=transient)
+    run_check(args.fine, args.coarse, args.report, transient=transient, quiet=args.quiet)
     return 0
 
 

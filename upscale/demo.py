@@ -100,7 +100,7 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     atomic_write(paths["summary"], lambda tmp: Path(tmp).write_text(text + "\n"))
     print(f"coarse grids written after {time.perf_counter() - started:.0f} s; now the whole-model "
           "steady and transient checks of the fine and coarse models (a few minutes)", flush=True)
-    run_check(paths["fine"], paths["coarse"], report_dir=reports, transient=DEMO_TRANSIENT)
+    run_check(paths["fine"], paths["coarse"], report_dir=reports, transient=DEMO_TRANSIENT, quiet=quiet)
     paths.update(report=reports / "index.html", metrics=reports / "metrics.json")
     elapsed = time.perf_counter() - started
     print(f"upscale demo finished in {elapsed:.1f} s")

@@ -3,6 +3,9 @@
 
 from __future__ import annotations
 
+import sys
+import time
+
 import numpy as np
 import xarray as xr
 
@@ -103,11 +106,12 @@ def _layering(cells: FineArrays, partition: Partition) -> dict:
 
 
 def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE,
-                 transient: dict | None = None) -> tuple[dict, dict]:
+                 transient: dict | None = None, say=None) -> tuple[dict, dict]:
     """Every check of a coarse grid against its fine field.
 
     ``transient``: keyword arguments of :func:`upscale.transient.transient_check` (drainage,
-    face, column, compressibility, viscosity, steps_per_doubling, ...).
+    face, column, compressibility, viscosity, steps_per_doubling, ...); ``say``: called with
+    a short line as each stage starts (progress), or None.
 
     Returns (metrics, arrays): metrics is JSON-ready (see README: global, layer_flow_share,
     pressure_rms, transient, blocks, layering, multipliers, pore_volume); arrays holds what
@@ -123,12 +127,18 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
     cells = fine_arrays(fine)
     partition = coarse_partition(coarse, cells.shape)
     check_options(coarse, cells.shape, **(transient or {}))  # fail before the long solves
+    say = say or (lambda line: None)
+    say(f"whole-model steady check along x, y, z: fine model ({int(cells.active.sum()):,} active cells) "
+        "and coarse grid")
     metrics = steady_check(fine, coarse)
+    say("static averages against flow-based values, block by block")
     flow_k, source = flow_reference(cells, partition, coarse)
     blocks, block_arrays = block_errors(cells, partition, flow_k, tolerance)
     blocks["flow_reference"] = source
     metrics["blocks"] = blocks
+    say("transient drainage check, fine and coarse (the fine model's time steps take longest)")
     metrics["transient"] = transient_check(fine, coarse, **(transient or {}))
+    say("layer grouping")
     metrics["layering"] = _layering(cells, partition) if cells.shape[2] > 1 else None
     fine_pv = float(cells.pore_volume.sum())
     coarse_pv = float(coarse["pore_volume"].values.sum())
@@ -158,13 +168,19 @@ def check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE,
 
 
 def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERANCE,
-              transient: dict | None = None) -> dict:
+              transient: dict | None = None, quiet: bool = False) -> dict:
     """``upscale check``: print the whole-model comparison; write the report if asked."""
     from .field import open_field
 
     fine = open_field(fine_path)
     coarse = open_field(coarse_path)
-    metrics, arrays = check_models(fine, coarse, tolerance, transient)
+    started = time.perf_counter()
+
+    def say(line: str) -> None:
+        if not quiet:
+            print(f"upscale check [{time.perf_counter() - started:5.0f} s] {line}", file=sys.stderr, flush=True)
+
+    metrics, arrays = check_models(fine, coarse, tolerance, transient, say)
     print(format_check(metrics))
     if report_dir is not None:
         from .report import build_report
