@@ -333,3 +333,16 @@ def test_axes_on_worker_processes_match_one_process():
         np.testing.assert_array_equal(a["pressure"], b["pressure"])
         assert a["k"] == pytest.approx(c["k"], rel=1e-12)
         np.testing.assert_allclose(a["pressure"], c["pressure"], rtol=0, atol=1e-12)
+
+
+def test_worker_count_respects_cores_and_memory(monkeypatch):
+    import upscale.globalflow as globalflow
+
+    monkeypatch.setattr(globalflow.os, "sched_getaffinity", lambda pid: {0, 1, 2, 3, 4, 5}, raising=False)
+    monkeypatch.setattr(globalflow, "_available_memory", lambda: 10 * 2 ** 30)
+    assert globalflow.worker_count() == 3                   # three axes at most
+    cells = 4 * 2 ** 30 // globalflow.BYTES_PER_CELL        # 4 GiB per axis: two fit in 10 GiB
+    assert globalflow.worker_count(cells) == 2
+    assert globalflow.worker_count(100 * cells) == 1        # never fewer than one
+    monkeypatch.setattr(globalflow, "_available_memory", lambda: None)
+    assert globalflow.worker_count(100 * cells) == 3        # unknown memory: cores decide

@@ -377,23 +377,46 @@ def _ignore_interrupt() -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the parent handles Ctrl-C and ends the workers
 
 
-def worker_count() -> int:
-    """Processes for the three axes of the fine check: one per usable core, at most three."""
+#: Peak memory of one axis of the fine check per cell, bytes: measured on the 1.12 M-cell
+#: benchmark field (largest worker 1412 MB), rounded up.
+BYTES_PER_CELL = 1300
+
+
+def _available_memory() -> int | None:
+    """MemAvailable of /proc/meminfo in bytes, None where it cannot be read."""
+    try:
+        with open("/proc/meminfo") as meminfo:
+            for line in meminfo:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
+
+
+def worker_count(cells: int = 0) -> int:
+    """Processes for the three axes of the fine check: one per usable core, at most three,
+    and no more than the available memory holds at :data:`BYTES_PER_CELL` per cell each."""
     try:
         cores = len(os.sched_getaffinity(0))
     except AttributeError:  # not on Linux
         cores = os.cpu_count() or 1
-    return max(1, min(3, cores))
+    workers = min(3, cores)
+    available = _available_memory()
+    if cells and available is not None:
+        workers = min(workers, available // (BYTES_PER_CELL * cells))
+    return max(1, workers)
 
 
 def fine_model_checks(cells: FineArrays, tolerance: float = 1e-10, direct_limit: int = DIRECT_LIMIT,
                       workers: int | None = None) -> list[dict]:
     """:func:`fine_model_check` along x, y and z; the three axes are independent, so a
     model too large for the direct solver is run on up to ``workers`` forked processes
-    (default :func:`worker_count`), each solving whole axes, with the results of one
-    process. Small models, and platforms without fork, run in this process."""
+    (default :func:`worker_count`: cores and available memory), each solving whole axes,
+    with the results of one process. Small models, and platforms without fork, run in this
+    process."""
     global _SHARED_CELLS
-    workers = worker_count() if workers is None else max(1, int(workers))
+    workers = worker_count(math.prod(cells.shape)) if workers is None else max(1, int(workers))
     jobs = [(axis, tolerance, direct_limit) for axis in range(3)]
     forkable = "fork" in multiprocessing.get_all_start_methods()
     if workers == 1 or not forkable or math.prod(cells.shape) <= direct_limit:
