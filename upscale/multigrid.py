@@ -48,7 +48,6 @@ class VCycle(spla.LinearOperator):
         self.restrictors = [sp.csr_matrix(level.R) for level in levels[:-1]]
         self.coarsest = np.linalg.pinv(self.operators[-1].toarray())
         self.line_smoother = LineSmoother(self.operators[0])
-        self.operator_complexity = float(hierarchy.operator_complexity())
         super().__init__(dtype=np.float64, shape=self.operators[0].shape)
 
     def _matvec(self, b):
