@@ -87,13 +87,13 @@ class LineSmoother:
         coupled = (A.data != 0) & (cols != rows)
         new_line = np.ones(n, dtype=bool)
         new_line[cols[coupled & (cols == rows + 1)]] = False  # row i + 1 continues row i's line
-        while True:
-            line = np.cumsum(new_line) - 1
-            # A line must hold no coupling but its tridiagonal one: split where it does.
-            far = coupled & (np.abs(cols - rows) > 1) & (line[cols] == line[rows])
-            if not far.any():
-                break
-            new_line[np.maximum(rows[far], cols[far])] = True
+        # A line must hold no coupling but its tridiagonal one: where two rows of a line are
+        # coupled further apart, start a new line at the later one. Splitting only refines
+        # the lines, so one pass separates every such pair.
+        line = np.cumsum(new_line) - 1
+        far = coupled & (np.abs(cols - rows) > 1) & (line[cols] == line[rows])
+        new_line[np.maximum(rows[far], cols[far])] = True
+        line = np.cumsum(new_line) - 1
         self.starts = np.append(np.flatnonzero(new_line), n).astype(np.int64)
         inside = (line[cols] == line[rows]) & coupled
         upper = np.zeros(n)
