@@ -346,3 +346,6 @@ def test_worker_count_respects_cores_and_memory(monkeypatch):
     assert globalflow.worker_count(100 * cells) == 1        # never fewer than one
     monkeypatch.setattr(globalflow, "_available_memory", lambda: None)
     assert globalflow.worker_count(100 * cells) == 3        # unknown memory: cores decide
+    assert globalflow.axis_processes(cells) == 3
+    assert globalflow.axis_processes(cells, workers=2) == 2
+    assert globalflow.axis_processes(globalflow.DIRECT_LIMIT) == 1  # the direct solver: in process

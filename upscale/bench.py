@@ -160,11 +160,11 @@ def run_bench(shape=(60, 220, 85), sample: int = 300, quiet: bool = False, seed:
         "peak_memory_mb": _peak_memory_mb(),
     }
     if whole_model:
-        from .globalflow import fine_model_checks, worker_count
+        from .globalflow import axis_processes, fine_model_checks
 
         start = time.perf_counter()
-        solves = [r["solver"] for r in fine_model_checks(cells)]
-        figures["whole_model_workers"] = worker_count(cells.kx.size)
+        figures["whole_model_workers"] = axis_processes(cells.kx.size)
+        solves = [r["solver"] for r in fine_model_checks(cells, workers=figures["whole_model_workers"])]
         figures["whole_model_seconds"] = time.perf_counter() - start
         figures["whole_model_residual"] = max(s["relative_residual"] for s in solves)
         figures["peak_memory_mb"] = _peak_memory_mb()

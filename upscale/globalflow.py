@@ -408,6 +408,16 @@ def worker_count(cells: int = 0) -> int:
     return max(1, workers)
 
 
+def axis_processes(cells: int, direct_limit: int = DIRECT_LIMIT, workers: int | None = None) -> int:
+    """Processes :func:`fine_model_checks` uses for a model of ``cells`` cells: 1 for a
+    model the direct solver takes or where fork is missing, else ``workers`` (default
+    :func:`worker_count`), at most three."""
+    if cells <= direct_limit or "fork" not in multiprocessing.get_all_start_methods():
+        return 1
+    workers = worker_count(cells) if workers is None else max(1, int(workers))
+    return min(workers, 3)
+
+
 def fine_model_checks(cells: FineArrays, tolerance: float = 1e-10, direct_limit: int = DIRECT_LIMIT,
                       workers: int | None = None) -> list[dict]:
     """:func:`fine_model_check` along x, y and z; the three axes are independent, so a
@@ -416,15 +426,13 @@ def fine_model_checks(cells: FineArrays, tolerance: float = 1e-10, direct_limit:
     with the results of one process. Small models, and platforms without fork, run in this
     process."""
     global _SHARED_CELLS
-    workers = worker_count(math.prod(cells.shape)) if workers is None else max(1, int(workers))
-    jobs = [(axis, tolerance, direct_limit) for axis in range(3)]
-    forkable = "fork" in multiprocessing.get_all_start_methods()
-    if workers == 1 or not forkable or math.prod(cells.shape) <= direct_limit:
+    processes = axis_processes(math.prod(cells.shape), direct_limit, workers)
+    if processes == 1:
         return [fine_model_check(cells, axis, tolerance=tolerance, direct_limit=direct_limit) for axis in range(3)]
     _SHARED_CELLS = cells  # inherited by the forked workers, not pickled
-    pool = multiprocessing.get_context("fork").Pool(min(workers, 3), initializer=_ignore_interrupt)
+    pool = multiprocessing.get_context("fork").Pool(processes, initializer=_ignore_interrupt)
     try:
-        results = pool.map(_fine_axis, jobs, chunksize=1)
+        results = pool.map(_fine_axis, [(axis, tolerance, direct_limit) for axis in range(3)], chunksize=1)
         pool.close()
         return results
     except BaseException:
