@@ -394,7 +394,9 @@ def projected_guess(A, b: np.ndarray, vectors) -> np.ndarray:
 class _StepSolver:
     """Solves (diag(storage / dt) + K) u = rhs, one factorisation (or AMG hierarchy) per
     distinct dt, the last few kept. The matrix is scaled to unit diagonal first. CG starts
-    from :func:`projected_guess` over the last pressure and the last few solutions."""
+    from :func:`projected_guess` over the last pressure and the last ``REMEMBER`` solutions."""
+
+    REMEMBER = 6
 
     def __init__(self, K, storage, direct_limit: int, tolerance: float, keep: int = 4):
         self.K = K
@@ -407,7 +409,6 @@ class _StepSolver:
         self.iterations = 0
         self.worst_residual = 0.0
         self.history: list[np.ndarray] = []  # the last solutions, newest first
-        self.remember = 6
 
     def _prepare(self, dt: float):
         for known, entry in self.cache.items():
@@ -455,7 +456,7 @@ class _StepSolver:
                            rtol=self.tolerance, atol=0.0, maxiter=1000, M=solver, callback=counter)
             self.iterations += count
             x = scale * y
-            self.history = [x, *self.history[:self.remember - 1]]
+            self.history = [x, *self.history[:self.REMEMBER - 1]]
         residual = float(np.linalg.norm(rhs - A @ x) / norm)
         self.worst_residual = max(self.worst_residual, residual)
         return x, dt
