@@ -8,6 +8,7 @@ The coarse Dataset is itself a valid field (see DESIGN.md, coarse grid schema): 
 from __future__ import annotations
 
 import logging
+from dataclasses import dataclass
 from datetime import datetime, timezone
 
 import numpy as np
@@ -15,10 +16,11 @@ import xarray as xr
 
 from .errors import InputError
 from .field import FineArrays, arrays, validate
-from .local import BOUNDARY_CONDITIONS, flow_tensors
+from .local import BATCH_BYTES, BOUNDARY_CONDITIONS, flow_tensors
 from .partition import AXES, Partition, make_partition
 from .static import STATIC_METHODS, block_length, cardwell_parsons, divide_or_zero, static_average
-from .transmissibility import coarse_transmissibility, flow_transmissibility, multipliers as face_multipliers, unit_system
+from .tpfa import cell_geometry, half_transmissibility, harmonic_pair
+from .transmissibility import flow_transmissibility, multipliers as face_multipliers, unit_system
 from .version import tool_version
 
 log = logging.getLogger(__name__)
@@ -52,9 +54,55 @@ def _method_label(methods: tuple[str, str, str]) -> str:
     return ", ".join(f"{a}: {m}" for a, m in zip(AXES, methods))
 
 
+@dataclass(frozen=True)
+class Recipe:
+    """What ``coarsen`` computes: methods per axis, local boundary condition and border
+    (fine cells), power exponent, flow-based multipliers, transmissibility units."""
+
+    methods: tuple[str, str, str]
+    bc: str
+    border: int
+    omega: float | None
+    multipliers: bool
+    units: str
+
+    @property
+    def flow(self) -> bool:
+        return "flow" in self.methods
+
+    @property
+    def full(self) -> bool:
+        """A full tensor (kxy, kxz, kyz) is written."""
+        return self.flow and self.bc in FULL_TENSOR
+
+    def halo(self, partition: Partition) -> tuple[tuple[int, int, int], tuple[int, int, int]]:
+        """Fine cells a box of whole blocks needs beyond its own, below and above per axis:
+        the border ring of the local solves, and for face problems the next block too."""
+        ring = self.border if (self.flow or self.multipliers) else 0
+        high = [ring + (int(partition.sizes(a).max()) if self.multipliers else 0) for a in range(3)]
+        return (ring,) * 3, tuple(high)
+
+
+def make_recipe(method="flow", bc: str = "sealed", border: int = 0, omega: float | None = None,
+                multipliers: bool = False, units: str = "metric") -> Recipe:
+    """Check ``coarsen``'s options (InputError naming the bad one) and gather them."""
+    methods = parse_methods(method)
+    if "flow" in methods and bc not in BOUNDARY_CONDITIONS:
+        raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
+    if bc in FULL_TENSOR and "flow" in methods and set(methods) != {"flow"}:
+        raise InputError(f"boundary condition '{bc}' gives a full tensor: use method 'flow' on all axes")
+    if "power" in methods and (omega is None or not np.isfinite(omega)):
+        raise InputError("method 'power' needs a finite exponent omega (e.g. --omega 0.5)")
+    if border < 0 or int(border) != border:
+        raise InputError(f"border must be a whole number of fine cells >= 0, got {border}")
+    unit_system(units)
+    return Recipe(methods, bc if "flow" in methods else "none", int(border), omega, bool(multipliers), units)
+
+
 def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flow",
             bc: str = "sealed", border: int = 0, omega: float | None = None,
-            multipliers: bool = False, units: str = "metric", progress=None) -> xr.Dataset:
+            multipliers: bool = False, units: str = "metric", progress=None,
+            memory: int | None = None) -> xr.Dataset:
     """Coarsen a fine field.
 
     ratio: (rx, ry, rz) fine cells per coarse cell (remainders give a smaller last block);
@@ -63,80 +111,197 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
     ("arithmetic,arithmetic,harmonic" or a dict); bc, border: local boundary condition and
     border ring (fine cells) for ``flow``; multipliers: compute flow-based transmissibility
     multipliers; units: transmissibility units, metric or field.
+
+    A lazy field (``open_field(path, chunks=...)``) gives a lazy result: boxes of whole
+    coarse blocks sized for ``memory`` bytes per task (:mod:`upscale.parallel`), computed
+    when written (:func:`upscale.write`) or loaded. ``progress`` (in-memory fields only)
+    receives the number of blocks finished by each batch of local solves.
     """
+    recipe = make_recipe(method, bc, border, omega, multipliers, units)
+    if is_lazy(fine):
+        from .parallel import lazy_block_variables
+
+        partition = make_partition(tuple(fine.sizes[d] for d in AXES), ratio=ratio, edges=edges)
+        variables = lazy_block_variables(fine, partition, recipe, memory)
+        return assemble(variables, fine, partition, recipe)
     fine = validate(fine)
-    methods = parse_methods(method)
-    if "flow" in methods and bc not in BOUNDARY_CONDITIONS:
-        raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
-    if bc in FULL_TENSOR and "flow" in methods and set(methods) != {"flow"}:
-        raise InputError(f"boundary condition '{bc}' gives a full tensor: use method 'flow' on all axes")
-    if "power" in methods and (omega is None or not np.isfinite(omega)):
-        raise InputError("method 'power' needs a finite exponent omega (e.g. --omega 0.5)")
-    unit_system(units)
     cells = arrays(fine)
     partition = make_partition(cells.shape, ratio=ratio, edges=edges)
-    if border < 0 or int(border) != border:
-        raise InputError(f"border must be a whole number of fine cells >= 0, got {border}")
-
-    volumes = _volumes(cells, partition)
-    k_flow = cells.flow_permeability()
-    weight = cells.bulk_volume * cells.active
-    effective = np.zeros(partition.shape + (3, 3))
-    flow = None
-    if "flow" in methods:
-        flow = flow_tensors(cells, partition, bc=bc, border=int(border), progress=progress)
-        effective[:] = flow.tensor
-    for axis, name in enumerate(methods):
-        if name != "flow":
-            effective[..., axis, axis] = static_average(k_flow[axis], weight, partition, name, omega)
-    full = flow is not None and bc in FULL_TENSOR
-    if not full:
-        effective *= np.eye(3)
-    coarse = _dataset(cells, partition, volumes, effective, full, units)
-    for axis, name in enumerate(AXES):
-        lower, upper = cardwell_parsons(k_flow[axis], cells.dx, cells.dy, cells.dz, partition, axis)
-        coarse[f"k{name}_lower_bound"] = (AXES, lower, {"units": "mD", "long_name":
-                                          f"Cardwell-Parsons lower bound along {name} (effective)"})
-        coarse[f"k{name}_upper_bound"] = (AXES, upper, {"units": "mD", "long_name":
-                                          f"Cardwell-Parsons upper bound along {name} (effective)"})
-    if flow is not None:
-        coarse["solve_residual"] = (AXES, flow.residual, {"long_name": "largest relative residual of the local solves"})
-        if bc == "linear":
-            coarse["tensor_asymmetry"] = (AXES, flow.asymmetry, {
-                "long_name": "||K - K^T|| / ||K|| of the local tensor before symmetrising"})
-        worst = float(flow.residual.max(initial=0.0))
-        if worst > 1e-10:
-            log.warning("largest relative residual of the local solves is %.2e (> 1e-10)", worst)
-    _warn_flagged(effective, volumes["active"], coarse,
-                  sealed_axes=[a for a, m in enumerate(methods) if m == "flow" and bc == "sealed"])
-    if multipliers:
-        flow_faces, residuals = flow_transmissibility(cells, partition, border=int(border), units=units,
-                                                      progress=progress)
-        for axis, name in enumerate(AXES):
-            t_name = f"t{name}"
-            ratio_values = face_multipliers(flow_faces[axis], coarse[t_name].values)
-            coarse[f"{t_name}_multiplier"] = (coarse[t_name].dims, ratio_values, {
-                "units": "1", "long_name": f"flow-based transmissibility multiplier on {name} faces",
-                "computed": "flow-based: two-block local solve, relative to the written permeability"})
-            worst = float(residuals[axis].max(initial=0.0))
-            if worst > 1e-10:
-                log.warning("largest relative residual of the %s face solves is %.2e (> 1e-10)", name, worst)
-    coarse.attrs.update(_provenance(fine, partition, methods, bc if flow is not None else "none",
-                                    border, omega, units))
+    everything = tuple(slice(0, n) for n in partition.shape)
+    variables = block_variables(cells, partition, everything, recipe, progress=progress)
+    coarse = assemble(variables, fine, partition, recipe)
+    warn_flagged(coarse)
     return coarse
 
 
-def _warn_flagged(effective: np.ndarray, active: np.ndarray, coarse: xr.Dataset, sealed_axes) -> None:
-    """Warn about active blocks that do not flow along an axis, and about sealed flow-based
-    values outside the Cardwell-Parsons bounds (beyond round-off), which would be a fault."""
+def is_lazy(ds: xr.Dataset) -> bool:
+    """Does the dataset hold dask (lazy) arrays?"""
+    return any(v.chunks is not None for v in ds.variables.values())
+
+
+def block_variables(cells: FineArrays, partition: Partition, blocks: tuple[slice, slice, slice],
+                    recipe: Recipe, progress=None, budget: int = BATCH_BYTES) -> dict[str, np.ndarray]:
+    """Everything ``coarsen`` writes per coarse block, for the box ``blocks`` (coarse index
+    slices of ``partition``), from ``cells``, which hold the box and its halo
+    (:meth:`Recipe.halo`).
+
+    Per block: dz, kx, ky, kz (and kxy, kxz, kyz), porosity, ntg, pore and bulk volume,
+    active, the Cardwell-Parsons bounds, solve residuals; ``half_x`` ... half-cell
+    transmissibilities in the recipe's units (for the faces); with multipliers
+    ``tx_flow`` ... on the faces after each block of the box (none after the grid's last).
+    """
+    box = tuple(slice(int(partition.edges[a][b.start]), int(partition.edges[a][b.stop])) for a, b in enumerate(blocks))
+    core = cells.crop(box)
+    core_partition = partition.crop(blocks)
+    shape = core_partition.shape
+    only = tuple(np.arange(b.start, b.stop) for b in blocks)
+    volumes = _volumes(core, core_partition)
+    k_flow = core.flow_permeability()
+    weight = core.bulk_volume * core.active
+    effective = np.zeros(shape + (3, 3))
+    out = {}
+    if recipe.flow:
+        flow = flow_tensors(cells, partition, bc=recipe.bc, border=recipe.border, progress=progress,
+                            budget=budget, only=only)
+        effective[:] = flow.tensor[blocks]
+        out["solve_residual"] = flow.residual[blocks]
+        if recipe.bc == "linear":
+            out["tensor_asymmetry"] = flow.asymmetry[blocks]
+    for axis, name in enumerate(recipe.methods):
+        if name != "flow":
+            effective[..., axis, axis] = static_average(k_flow[axis], weight, core_partition, name, recipe.omega)
+    if not recipe.full:
+        effective *= np.eye(3)
+    active = volumes["active"]
+    k = np.where(active[..., None, None], effective, 0.0)
+    # Net convention: horizontal components are divided by ntg, vertical ones are effective.
+    net = np.where(HORIZONTAL, divide_or_zero(k, volumes["ntg"][..., None, None]), k)
+    dx = np.add.reduceat(core.dx, core_partition.edges[0][:-1])
+    dy = np.add.reduceat(core.dy, core_partition.edges[1][:-1])
+    dz = block_length(core_partition, core.dx, core.dy, core.dz, 2)
+    out.update(dz=dz, kx=net[..., 0, 0], ky=net[..., 1, 1], kz=net[..., 2, 2], porosity=volumes["porosity"],
+               ntg=volumes["ntg"], pore_volume=volumes["pore"], bulk_volume=volumes["bulk"],
+               active=active.astype(np.int8))
+    if recipe.full:
+        out.update(kxy=net[..., 0, 1], kxz=net[..., 0, 2], kyz=net[..., 1, 2])
+    _, constant, to_length = unit_system(recipe.units)
+    volume, lengths = cell_geometry(dx, dy, dz)
     for axis, name in enumerate(AXES):
-        k = effective[..., axis, axis]
+        lower, upper = cardwell_parsons(k_flow[axis], core.dx, core.dy, core.dz, core_partition, axis)
+        out[f"k{name}_lower_bound"], out[f"k{name}_upper_bound"] = lower, upper
+        # T scales with length (A / L): mD*m -> mD*ft multiplies by the metres-to-feet factor.
+        out[f"half_{name}"] = constant * to_length * half_transmissibility(k[..., axis, axis], volume, lengths[axis])
+    if recipe.multipliers:
+        faces, residuals = flow_transmissibility(cells, partition, border=recipe.border, units=recipe.units,
+                                                 progress=progress, budget=budget, only=only)
+        residual = out.get("solve_residual", np.zeros(shape))
+        for axis, name in enumerate(AXES):
+            owned = list(blocks)
+            owned[axis] = slice(blocks[axis].start, min(blocks[axis].stop, partition.shape[axis] - 1))
+            out[f"t{name}_flow"] = faces[axis][tuple(owned)]
+            local = tuple(slice(0, o.stop - o.start) for o in owned)
+            residual[local] = np.maximum(residual[local], residuals[axis][tuple(owned)])
+        out["solve_residual"] = residual
+    return out
+
+
+HORIZONTAL = np.array([[1, 1, 0], [1, 1, 0], [0, 0, 0]], dtype=bool)
+
+#: attributes of the per-block variables written to a coarse file
+BLOCK_ATTRS = {
+    "dz": {"units": "m", "long_name": "coarse cell mean thickness"},
+    "kx": {"units": "mD", "long_name": "net permeability along x (times ntg: effective)"},
+    "ky": {"units": "mD", "long_name": "net permeability along y (times ntg: effective)"},
+    "kz": {"units": "mD", "long_name": "effective permeability along z"},
+    "kxy": {"units": "mD", "long_name": "net xy permeability (times ntg: effective)"},
+    "kxz": {"units": "mD", "long_name": "effective xz permeability"},
+    "kyz": {"units": "mD", "long_name": "effective yz permeability"},
+    "porosity": {"units": "1"},
+    "ntg": {"units": "1", "long_name": "net-to-gross"},
+    "pore_volume": {"units": "m3"},
+    "bulk_volume": {"units": "m3"},
+    "active": {"long_name": "active coarse cell (has an active fine cell)"},
+    "solve_residual": {"long_name": "largest relative residual of the local solves (blocks and faces)"},
+    "tensor_asymmetry": {"long_name": "||K - K^T|| / ||K|| of the local tensor before symmetrising"},
+    **{f"k{a}_{side}_bound": {"units": "mD", "long_name": f"Cardwell-Parsons {side} bound along {a} (effective)"}
+       for a in AXES for side in ("lower", "upper")},
+}
+
+
+def _blockwise(function, *values):
+    """``function`` on numpy arrays, or chunk by chunk on dask arrays, on the chunks of
+    the first (the others are rechunked to match)."""
+    if hasattr(values[0], "dask"):
+        import dask.array as da
+
+        chunks = values[0].chunks
+        return da.map_blocks(function, *[v.rechunk(chunks) for v in values], dtype=float)
+    return function(*values)
+
+
+def assemble(variables: dict, fine: xr.Dataset, partition: Partition, recipe: Recipe) -> xr.Dataset:
+    """The coarse Dataset from :func:`block_variables` (numpy, or dask for a lazy field):
+    per-block variables, cell sizes, fine index ranges, face transmissibilities from the
+    written permeability (harmonic pair of the half-cell values) and multipliers."""
+    cell = AXES
+    dx_fine, dy_fine = (np.asarray(fine[n].values, dtype=float) for n in ("dx", "dy"))  # m (normalised)
+    data = {
+        "dx": (("x",), np.add.reduceat(dx_fine, partition.edges[0][:-1]),
+               {"units": "m", "long_name": "coarse cell size along x"}),
+        "dy": (("y",), np.add.reduceat(dy_fine, partition.edges[1][:-1]),
+               {"units": "m", "long_name": "coarse cell size along y"}),
+    }
+    for name, attrs in BLOCK_ATTRS.items():
+        if name in variables:
+            data[name] = (cell, variables[name], attrs)
+    for axis, name in enumerate(AXES):
+        e = partition.edges[axis]
+        data[f"{name}_start"] = ((name,), e[:-1].astype(np.int32), {"long_name": f"first fine {name} index"})
+        data[f"{name}_stop"] = ((name,), e[1:].astype(np.int32), {"long_name": f"fine {name} index past the block"})
+    unit_name, _, _ = unit_system(recipe.units)
+    for axis, name in enumerate(AXES):
+        dims = tuple(f"{name}_face" if d == name else d for d in cell)
+        half = variables[f"half_{name}"]
+        n = half.shape[axis]
+        first = half[tuple(slice(0, n - 1) if a == axis else slice(None) for a in range(3))]
+        second = half[tuple(slice(1, n) if a == axis else slice(None) for a in range(3))]
+        t = _blockwise(harmonic_pair, first, second)
+        data[f"t{name}"] = (dims, t, {"units": unit_name, "long_name":
+                                     f"transmissibility between coarse cells i and i+1 along {name}"})
+        if recipe.multipliers:
+            data[f"t{name}_multiplier"] = (dims, _blockwise(face_multipliers, variables[f"t{name}_flow"], t), {
+                "units": "1", "long_name": f"flow-based transmissibility multiplier on {name} faces",
+                "computed": "flow-based: two-block local solve, relative to the written permeability"})
+        else:
+            data[f"t{name}_multiplier"] = (dims, _blockwise(np.ones_like, t), {
+                "units": "1", "long_name": f"transmissibility multiplier on {name} faces",
+                "computed": "no: all 1; request flow-based multipliers (multipliers=True) to compute them"})
+    coarse = xr.Dataset({n: xr.Variable(*spec) for n, spec in data.items()})
+    coarse.attrs.update(_provenance(fine, partition, recipe))
+    return coarse
+
+
+def warn_flagged(coarse: xr.Dataset) -> None:
+    """Warn about large local-solve residuals, active blocks that do not flow along an
+    axis, and sealed flow-based values outside the Cardwell-Parsons bounds (beyond
+    round-off), which would be a fault."""
+    if "solve_residual" in coarse:
+        worst = float(coarse["solve_residual"].max())
+        if worst > 1e-10:
+            log.warning("largest relative residual of the local solves is %.2e (> 1e-10)", worst)
+    active = coarse["active"].values.astype(bool)
+    label = str(coarse.attrs.get("method", "flow"))
+    methods = parse_methods(",".join(part.split(": ")[-1] for part in label.split(", ")))
+    ntg = coarse["ntg"].values
+    for axis, name in enumerate(AXES):
+        k = coarse[f"k{name}"].values * (ntg if axis < 2 else 1.0)
         closed = active & (k == 0)
         if closed.any():
             first = tuple(int(i) for i in np.argwhere(closed)[0])
             log.warning("%d active coarse block(s) have zero k%s (no connected path across), first at %s",
                         int(closed.sum()), name, first)
-        if axis not in sealed_axes:
+        bordered = int(coarse.attrs.get("border", 0)) > 0  # the bounds bracket the block alone
+        if methods[axis] != "flow" or coarse.attrs.get("boundary_condition") != "sealed" or bordered:
             continue
         lower = coarse[f"k{name}_lower_bound"].values
         upper = coarse[f"k{name}_upper_bound"].values
@@ -158,52 +323,9 @@ def _volumes(cells: FineArrays, partition: Partition) -> dict[str, np.ndarray]:
     return {"bulk": bulk, "pore": pore, "ntg": ntg, "porosity": porosity, "active": active}
 
 
-def _dataset(cells: FineArrays, partition: Partition, volumes, effective, full: bool, units: str):
-    dx = np.add.reduceat(cells.dx, partition.edges[0][:-1])
-    dy = np.add.reduceat(cells.dy, partition.edges[1][:-1])
-    dz = block_length(partition, cells.dx, cells.dy, cells.dz, 2)
-    active = volumes["active"]
-    ntg = volumes["ntg"]
-    k = np.where(active[..., None, None], effective, 0.0)
-    horizontal = np.array([[1, 1, 0], [1, 1, 0], [0, 0, 0]], dtype=bool)
-    # Net convention: horizontal components are divided by ntg, vertical ones are effective.
-    net = np.where(horizontal, divide_or_zero(k, ntg[..., None, None]), k)
-    cell = AXES
-    data = {
-        "dx": (("x",), dx, {"units": "m", "long_name": "coarse cell size along x"}),
-        "dy": (("y",), dy, {"units": "m", "long_name": "coarse cell size along y"}),
-        "dz": (cell, dz, {"units": "m", "long_name": "coarse cell mean thickness"}),
-        "kx": (cell, net[..., 0, 0], {"units": "mD", "long_name": "net permeability along x (times ntg: effective)"}),
-        "ky": (cell, net[..., 1, 1], {"units": "mD", "long_name": "net permeability along y (times ntg: effective)"}),
-        "kz": (cell, net[..., 2, 2], {"units": "mD", "long_name": "effective permeability along z"}),
-        "porosity": (cell, volumes["porosity"], {"units": "1"}),
-        "ntg": (cell, ntg, {"units": "1", "long_name": "net-to-gross"}),
-        "pore_volume": (cell, volumes["pore"], {"units": "m3"}),
-        "bulk_volume": (cell, volumes["bulk"], {"units": "m3"}),
-        "active": (cell, active.astype(np.int8), {"long_name": "active coarse cell (has an active fine cell)"}),
-    }
-    if full:
-        data["kxy"] = (cell, net[..., 0, 1], {"units": "mD", "long_name": "net xy permeability (times ntg: effective)"})
-        data["kxz"] = (cell, net[..., 0, 2], {"units": "mD", "long_name": "effective xz permeability"})
-        data["kyz"] = (cell, net[..., 1, 2], {"units": "mD", "long_name": "effective yz permeability"})
-    for axis, name in enumerate(AXES):
-        e = partition.edges[axis]
-        data[f"{name}_start"] = ((name,), e[:-1].astype(np.int32), {"long_name": f"first fine {name} index"})
-        data[f"{name}_stop"] = ((name,), e[1:].astype(np.int32), {"long_name": f"fine {name} index past the block"})
-    unit_name, _, _ = unit_system(units)
-    faces = coarse_transmissibility((k[..., 0, 0], k[..., 1, 1], k[..., 2, 2]), dx, dy, dz, active, units)
-    for axis, name in enumerate(AXES):
-        dims = tuple(f"{name}_face" if d == name else d for d in cell)
-        data[f"t{name}"] = (dims, faces[axis], {"units": unit_name, "long_name":
-                            f"transmissibility between coarse cells i and i+1 along {name}"})
-        data[f"t{name}_multiplier"] = (dims, np.ones_like(faces[axis]), {
-            "units": "1", "long_name": f"transmissibility multiplier on {name} faces",
-            "computed": "no: all 1; request flow-based multipliers (multipliers=True) to compute them"})
-    return xr.Dataset({n: xr.Variable(*spec) for n, spec in data.items()})
-
-
-def _provenance(fine: xr.Dataset, partition: Partition, methods, bc, border, omega, units) -> dict:
+def _provenance(fine: xr.Dataset, partition: Partition, recipe: Recipe) -> dict:
     describe = partition.describe()
+    methods, bc, border, omega, units = recipe.methods, recipe.bc, recipe.border, recipe.omega, recipe.units
     attrs = {
         "Conventions": "CF-1.10",
         "title": "coarse grid written by upscale",

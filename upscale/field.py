@@ -15,7 +15,7 @@ import signal
 import sys
 import tempfile
 import threading
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -61,6 +61,12 @@ class FineArrays:
     def pore_volume(self) -> np.ndarray:
         """Cell pore volume porosity * ntg * bulk volume, m3 (0 in inactive cells)."""
         return self.porosity * self.ntg * self.bulk_volume * self.active
+
+    def crop(self, cells: tuple[slice, slice, slice]) -> "FineArrays":
+        """The arrays of a box of cells (fine index slices per axis)."""
+        sx, sy, _ = cells
+        three = {n: getattr(self, n)[cells] for n in ("dz", "kx", "ky", "kz", "porosity", "ntg", "active")}
+        return FineArrays(dx=self.dx[sx], dy=self.dy[sy], **three)
 
     def flow_permeability(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Permeability that carries flow, mD: kx*ntg, ky*ntg, kz; 0 in inactive cells."""
@@ -176,10 +182,13 @@ def _probe_header(path: Path) -> None:
         raise InputError(f"{path}: not a readable NetCDF file ({message})")
 
 
-def open_field(path: str | os.PathLike) -> xr.Dataset:
+def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
     """Read and validate a fine (or coarse) field file; returns a normalised Dataset.
 
-    Raises :class:`InputError` naming the variable, the problem and the first bad cell.
+    ``chunks`` (a dask chunk spec, e.g. ``{"x": 100}`` or ``"auto"``) opens the file lazily:
+    the checks run chunk by chunk in one pass and the values stay on disk until used
+    (``coarsen`` aligns the chunks to whole coarse blocks). Raises :class:`InputError`
+    naming the variable, the problem and the first bad cell.
     """
     path = Path(path)
     if not path.exists():
@@ -192,28 +201,72 @@ def open_field(path: str | os.PathLike) -> xr.Dataset:
         # cell size must be refused as unknown units, not turned into dates
         # errstate: overflow or NaN from scale_factor/add_offset is reported by validate, not as
         # numpy warnings that break the one-line error
-        with (np.errstate(all="ignore"),
-              xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False) as raw):
-            ds = raw.load()
+        with np.errstate(all="ignore"):
+            raw = xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False,
+                                  chunks=chunks)
+            if chunks is None:
+                with raw:
+                    raw = raw.load()
     except Exception as exc:  # netCDF4 raises OSError, ValueError, RuntimeError...
         reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise InputError(f"{path}: not a readable NetCDF file ({reason})") from None
-    ds.attrs["source_path"] = str(path.resolve())
-    ds.attrs["source_sha256"] = file_checksum(path)
-    return validate(ds, where=str(path))
+    raw.attrs["source_path"] = str(path.resolve())
+    raw.attrs["source_sha256"] = file_checksum(path)
+    try:
+        with np.errstate(all="ignore"):
+            return validate(raw, where=str(path))
+    except InputError:
+        raw.close()
+        raise
+    except Exception as exc:  # a lazy read failing part-way through the file
+        raw.close()
+        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise InputError(f"{path}: not a readable NetCDF file ({reason})") from None
 
 
-def _first_index(mask: np.ndarray, dims: tuple[str, ...]) -> str:
-    index = np.argwhere(mask)[0]
-    return "(" + ", ".join(f"{d}={i}" for d, i in zip(dims, index)) + ")"
+@dataclass(frozen=True)
+class _Check:
+    """One rule on the cells: ``mask`` (DataArray, numpy or dask) marks the bad ones."""
+
+    mask: xr.DataArray
+    name: str
+    problem: str
+    fix: str
 
 
-def _refuse(mask: np.ndarray, where: str, name: str, problem: str, dims, fix: str) -> None:
-    """Raise if any cell of ``mask`` is set: count, first index, and a hint."""
-    count = int(np.count_nonzero(mask))
-    if count:
-        raise InputError(f"{where}: variable '{name}' {problem} in {count} cell(s), first at "
-                         f"{_first_index(mask, dims)}; {fix}")
+def _first_flat_index(mask) -> int:
+    """C-order flat index of the first set cell of a numpy or dask boolean array."""
+    if not hasattr(mask, "dask"):
+        return int(np.argmax(np.ravel(mask)))
+    import dask.array as da
+
+    def first(block, block_info=None):
+        found = np.flatnonzero(block)
+        if found.size == 0:
+            return np.full((1,) * block.ndim, np.iinfo(np.int64).max)
+        local = np.unravel_index(found[0], block.shape)
+        where = [lo + i for (lo, _), i in zip(block_info[0]["array-location"], local)]
+        return np.full((1,) * block.ndim, np.ravel_multi_index(where, mask.shape))
+
+    return int(da.map_blocks(first, mask, dtype=np.int64, chunks=(1,) * mask.ndim).min().compute(scheduler="threads"))
+
+
+def _count(checks: list[_Check]) -> tuple[int, ...]:
+    """Bad cells of every check, counted in one pass (dask computes them together)."""
+    import dask
+
+    # threads in this process: many small tasks, which a distributed scheduler would make slow
+    return tuple(int(n) for n in dask.compute(*[c.mask.data.sum() for c in checks], scheduler="threads"))
+
+
+def _refuse_first(checks: list[_Check], counts: tuple[int, ...], where: str) -> None:
+    """Raise for the first check with bad cells: count, first index and a hint."""
+    for check, count in zip(checks, counts):
+        if count:
+            index = np.unravel_index(_first_flat_index(check.mask.data), check.mask.shape)
+            at = "(" + ", ".join(f"{d}={i}" for d, i in zip(check.mask.dims, index)) + ")"
+            raise InputError(f"{where}: variable '{check.name}' {check.problem} in {count} cell(s), first at "
+                             f"{at}; {check.fix}")
 
 
 def _unit_scale(ds: xr.Dataset, name: str, where: str, table: dict, default: str, wanted: str) -> float:
@@ -247,7 +300,9 @@ def _require_dims(ds: xr.Dataset, name: str, allowed: tuple[tuple[str, ...], ...
 
 
 def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
-    """Check a dataset against the fine-field schema and return it normalised (see module doc)."""
+    """Check a dataset against the fine-field schema and return it normalised (see module
+    doc). Numpy- and dask-backed datasets go through the same rules; for a lazy one the
+    cell checks run chunk by chunk and the result stays lazy."""
     where = ds.attrs.get("source_path", where) if where == "field" else where
     missing = [n for n in ("dx", "dy", "dz", "porosity") if n not in ds]
     has_tensor = all(n in ds for n in PERMEABILITY)
@@ -274,55 +329,54 @@ def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
             raise InputError(f"{where}: variable '{name}' is not numeric (type {ds[name].dtype}); "
                              f"store it as numbers")
 
-    shape = tuple(ds.sizes[d] for d in DIMS)
-    sizes = {}
-    for name in ("dx", "dy", "dz"):
-        values = np.asarray(ds[name].values, dtype=float) * _length_scale(ds, name, where)
-        dims = ds[name].dims
-        _refuse(~np.isfinite(values), where, name, "is NaN or infinite", dims, "cell sizes must be finite")
+    def variable(name: str, scale: float = 1.0) -> xr.DataArray:
+        return xr.DataArray(ds[name].variable.astype(float) * scale)
+
+    sizes = {n: variable(n, _length_scale(ds, n, where)) for n in ("dx", "dy", "dz")}
+    size_checks = []
+    for name, values in sizes.items():
+        size_checks.append(_Check(~np.isfinite(values), name, "is NaN or infinite", "cell sizes must be finite"))
         if name == "dz":
-            _refuse(values < 0, where, name, "is negative", dims, "thickness must be >= 0 (0 = pinched out)")
+            size_checks.append(_Check(values < 0, name, "is negative", "thickness must be >= 0 (0 = pinched out)"))
         else:
-            _refuse(values <= 0, where, name, "is zero or negative", dims, "cell sizes must be > 0")
-        sizes[name] = values
-    dz = np.broadcast_to(sizes["dz"], shape).copy()
-
+            size_checks.append(_Check(values <= 0, name, "is zero or negative", "cell sizes must be > 0"))
+    template = xr.DataArray(ds[k_names[0]].variable)
+    dz = sizes["dz"].broadcast_like(template).transpose(*DIMS)
     active = dz > 0
+    checks = []
     if "active" in ds:
-        flag = np.asarray(ds["active"].values, dtype=float)
-        _refuse(~np.isin(flag, (0.0, 1.0)), where, "active", "is not 0 or 1", DIMS, "use 1 for active, 0 for inactive")
-        active &= flag == 1.0
-    if not active.any():
-        raise InputError(f"{where}: no active cell (all cells pinched out or flagged inactive)")
-
-    values = {}
-    for name in k_names:
-        values[name] = np.asarray(ds[name].values, dtype=float) * _permeability_scale(ds, name, where)
-    values["porosity"] = np.array(ds["porosity"].values, dtype=float)  # a copy: zeroed below
-    values["ntg"] = np.array(ds["ntg"].values, dtype=float) if "ntg" in ds else np.ones(shape)
+        flag = variable("active")
+        checks.append(_Check(~flag.isin((0.0, 1.0)), "active", "is not 0 or 1", "use 1 for active, 0 for inactive"))
+        active = active & (flag == 1.0)
+    values = {name: variable(name, _permeability_scale(ds, name, where)) for name in k_names}
+    values["porosity"] = variable("porosity")
+    values["ntg"] = variable("ntg") if "ntg" in ds else xr.ones_like(template, dtype=float)
     for name, data in values.items():
         fix = ("flag such cells inactive with an 'active' variable, or fill them" if name != "ntg"
                else "flag such cells inactive, or fill them")
-        _refuse(active & ~np.isfinite(data), where, name, "is NaN or infinite in active cells", DIMS, fix)
-        _refuse(active & (data < 0), where, name, "is negative in active cells", DIMS,
-                "permeability and fractions must be >= 0")
+        checks.append(_Check(active & ~np.isfinite(data), name, "is NaN or infinite in active cells", fix))
+        checks.append(_Check(active & (data < 0), name, "is negative in active cells",
+                             "permeability and fractions must be >= 0"))
         if name in ("porosity", "ntg"):
-            _refuse(active & (data > 1), where, name, "is above 1 in active cells", DIMS,
-                    "give fractions (0..1), not percent")
-        data[~active] = 0.0
+            checks.append(_Check(active & (data > 1), name, "is above 1 in active cells",
+                                 "give fractions (0..1), not percent"))
+    _refuse_first(size_checks, _count(size_checks), where)  # first: the other rules read dz
+    inactive, *counts = _count([_Check(~active, "active", "", "")] + checks)
+    if inactive == active.size:
+        raise InputError(f"{where}: no active cell (all cells pinched out or flagged inactive)")
+    _refuse_first(checks, tuple(counts), where)
     if not has_tensor:
-        values.update(kx=values["k"], ky=values["k"].copy(), kz=values["k"].copy())
-
-    cell = DIMS
+        values.update(kx=values["k"], ky=values["k"], kz=values["k"])
+    normal = {n: xr.where(active, values[n], 0.0) for n in (*PERMEABILITY, "porosity", "ntg")}
     out = xr.Dataset(
         {
-            "dx": (("x",), sizes["dx"], {"units": "m"}),
-            "dy": (("y",), sizes["dy"], {"units": "m"}),
-            "dz": (cell, dz, {"units": "m"}),
-            **{n: (cell, values[n], {"units": "mD"}) for n in PERMEABILITY},
-            "porosity": (cell, values["porosity"], {"units": "1"}),
-            "ntg": (cell, values["ntg"], {"units": "1"}),
-            "active": (cell, active.astype(np.int8), {}),
+            "dx": (("x",), sizes["dx"].data, {"units": "m"}),
+            "dy": (("y",), sizes["dy"].data, {"units": "m"}),
+            "dz": (DIMS, dz.data, {"units": "m"}),
+            **{n: (DIMS, normal[n].data, {"units": "mD"}) for n in PERMEABILITY},
+            "porosity": (DIMS, normal["porosity"].data, {"units": "1"}),
+            "ntg": (DIMS, normal["ntg"].data, {"units": "1"}),
+            "active": (DIMS, active.astype(np.int8).data, {}),
         },
         attrs=dict(ds.attrs),
     )
@@ -390,15 +444,16 @@ def interrupt_after():
         raise KeyboardInterrupt
 
 
-def atomic_write(path: str | os.PathLike, write_to) -> Path:
+def atomic_write(path: str | os.PathLike, write_to, hold_interrupt: bool = True) -> Path:
     """Call ``write_to(temporary_path)`` next to ``path`` and rename it into place when
-    complete; Ctrl-C during the call ends it cleanly (:func:`interrupt_after`) and the
+    complete; Ctrl-C during the call ends it cleanly (held back until the call returns,
+    :func:`interrupt_after`, unless ``write_to`` guards its own file operations) and the
     temporary file is removed."""
     path = Path(path)
     handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     os.close(handle)
     try:
-        with interrupt_after():
+        with interrupt_after() if hold_interrupt else nullcontext():
             write_to(temporary)
         umask = os.umask(0)
         os.umask(umask)
@@ -411,15 +466,22 @@ def atomic_write(path: str | os.PathLike, write_to) -> Path:
     return path
 
 
-def write(ds: xr.Dataset, path: str | os.PathLike) -> Path:
-    """Write a field atomically to NetCDF; refuses to write over the file it came from."""
+def write(ds: xr.Dataset, path: str | os.PathLike, progress=None) -> Path:
+    """Write a field atomically to NetCDF; refuses to write over the file it came from.
+
+    A lazy (dask-backed) dataset is computed and written box by box
+    (:func:`upscale.parallel.stream_write`; ``progress`` receives 1 per box); Ctrl-C
+    then stops the computation, and the temporary file is removed either way.
+    """
     sources = (ds.attrs.get("source_path"), ds.attrs.get("input_file"))
     path = check_output_path(path, inputs=sources)
-    for name in PERMEABILITY:
-        if name in ds:
-            data = np.asarray(ds[name].values)
-            active = np.asarray(ds["active"].values).astype(bool) if "active" in ds else np.ones(data.shape, bool)
-            _refuse(active & ~(np.isfinite(data) & (data >= 0)), str(path), name,
-                    "would be NaN, infinite or negative", DIMS, "this is a bug: please report it")
+    if any(v.chunks is not None for v in ds.variables.values()):
+        from .parallel import stream_write
+
+        return atomic_write(path, lambda tmp: stream_write(ds, tmp, progress), hold_interrupt=False)
+    active = xr.DataArray(ds["active"].variable).astype(bool) if "active" in ds else True
+    checks = [_Check(active & ~(np.isfinite(ds[name]) & (ds[name] >= 0)), name, "would be NaN, infinite or negative",
+                     "this is a bug: please report it") for name in PERMEABILITY if name in ds]
+    _refuse_first(checks, _count(checks), str(path))
     encoding = {name: {"zlib": True, "complevel": 1} for name in ds.data_vars}
     return atomic_write(path, lambda tmp: ds.to_netcdf(tmp, engine="netcdf4", encoding=encoding))

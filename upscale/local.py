@@ -506,10 +506,11 @@ def _batches(group: BlockGroup, budget: int):
 
 
 def local_domains(fine: FineArrays, partition: Partition, border: int = 0, extend=(0, 0, 0),
-                  budget: int = BATCH_BYTES):
-    """Yield (batch, LocalDomain) for every block (extended by ``extend`` blocks per axis)."""
+                  budget: int = BATCH_BYTES, only=(None, None, None)):
+    """Yield (batch, LocalDomain) for every block (extended by ``extend`` blocks per axis),
+    or for the blocks whose coarse indices per axis are in ``only``."""
     k = fine.flow_permeability()
-    for group in block_groups(partition, border, extend):
+    for group in block_groups(partition, border, extend, only):
         for batch in _batches(group, budget):
             full = (batch.count,) + batch.shape
             lx = np.broadcast_to(batch.gather_line(fine.dx, 0)[:, :, None, None], full)
@@ -519,11 +520,12 @@ def local_domains(fine: FineArrays, partition: Partition, border: int = 0, exten
 
 
 def flow_tensors(fine: FineArrays, partition: Partition, bc: str = "sealed", border: int = 0,
-                 progress=None, budget: int = BATCH_BYTES) -> FlowResult:
+                 progress=None, budget: int = BATCH_BYTES, only=(None, None, None)) -> FlowResult:
     """Flow-based effective permeability tensor of every coarse block (mD).
 
     Inactive blocks (no active fine cell) get 0. ``progress`` is an optional callable
-    receiving the number of blocks finished in each batch.
+    receiving the number of blocks finished in each batch; ``only`` restricts the solves
+    to the blocks with these coarse indices per axis (the others stay 0).
     """
     if bc not in BOUNDARY_CONDITIONS:
         raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
@@ -531,7 +533,7 @@ def flow_tensors(fine: FineArrays, partition: Partition, bc: str = "sealed", bor
     tensor = np.zeros(shape + (3, 3))
     residual = np.zeros(shape)
     asymmetry = np.zeros(shape)
-    for batch, domain in local_domains(fine, partition, border, budget=budget):
+    for batch, domain in local_domains(fine, partition, border, budget=budget, only=only):
         t, r, s = solve_domains(domain, bc)
         batch.scatter(tensor, t)
         batch.scatter(residual, r)

@@ -71,6 +71,35 @@ class Partition:
                 out = np.add.reduceat(out, self.edges[other][:-1], axis=other)
         return out
 
+    def crop(self, blocks: tuple[slice, slice, slice]) -> "Partition":
+        """The partition of the fine cells of a box of whole blocks (coarse index slices),
+        with fine indices counted from the box's first cell."""
+        edges = []
+        for axis, b in enumerate(blocks):
+            e = self.edges[axis][b.start:b.stop + 1]
+            edges.append(e - e[0])
+        return Partition(edges=tuple(edges), ratio=self.ratio)
+
+    def window(self, blocks: tuple[slice, slice, slice], low: tuple[int, int, int], high: tuple[int, int, int]
+               ) -> tuple[tuple[slice, slice, slice], "Partition", tuple[slice, slice, slice]]:
+        """A box of whole blocks widened by ``low`` / ``high`` fine cells per axis (clipped
+        at the grid edge): (fine slices of the window, the window's partition, the box's
+        blocks as coarse slices of that partition). Cells of the widening form extra,
+        possibly partial, blocks of the window's partition, so that local domains built
+        on the window equal those built on the whole grid."""
+        fine, edges, inner = [], [], []
+        for axis, b in enumerate(blocks):
+            e = self.edges[axis]
+            start = max(int(e[b.start]) - low[axis], 0)
+            stop = min(int(e[b.stop]) + high[axis], int(e[-1]))
+            inside = e[(e > start) & (e < stop)]
+            local = np.concatenate([[start], inside, [stop]]) - start
+            first = int(np.searchsorted(local, e[b.start] - start))
+            fine.append(slice(start, stop))
+            edges.append(local)
+            inner.append(slice(first, first + b.stop - b.start))
+        return tuple(fine), Partition(edges=tuple(edges)), tuple(inner)
+
     def expand(self, coarse: np.ndarray) -> np.ndarray:
         """Repeat a coarse (NX, NY, NZ) array onto the fine grid."""
         out = np.asarray(coarse)

@@ -12,7 +12,7 @@ import xarray as xr
 
 from .errors import InputError
 from .field import FineArrays
-from .local import LocalProblem, local_domains, sealed_boundary
+from .local import BATCH_BYTES, LocalProblem, local_domains, sealed_boundary
 from .partition import Partition
 from .tpfa import transmissibilities
 from .units import TRANSMISSIBILITY_UNITS
@@ -51,7 +51,8 @@ def _mean_pressure(domain, p: np.ndarray, connected: np.ndarray, region: tuple[s
 
 
 def flow_transmissibility(cells: FineArrays, partition: Partition, border: int = 0, units: str = "metric",
-                          progress=None) -> tuple[list[np.ndarray], list[np.ndarray]]:
+                          progress=None, budget: int = BATCH_BYTES, only=(None, None, None)
+                          ) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """Flow-based transmissibility of every interior coarse face (Romeu & Noetinger 1995;
     Chen, Durlofsky, Gerritsen & Wen 2003).
 
@@ -59,7 +60,9 @@ def flow_transmissibility(cells: FineArrays, partition: Partition, border: int =
     cells of both blocks (plus the border ring), no-flow sides, unit pressure drop between
     its far ends; T = C Q / (p1 - p2) with p1, p2 the bulk-volume-weighted mean pressures
     of each block's connected fine cells. Exactly 0 where no fine path crosses.
-    Returns (transmissibilities per axis in ``units``, residuals per axis).
+    ``only`` restricts the faces to those after the blocks with these coarse indices per
+    axis (the others stay 0). Returns (transmissibilities per axis in ``units``, residuals
+    per axis).
     """
     _, constant, to_length = unit_system(units)
     faces, residuals = [], []
@@ -70,7 +73,10 @@ def flow_transmissibility(cells: FineArrays, partition: Partition, border: int =
         residual = np.zeros(shape)
         if shape[axis] > 0:
             extend = tuple(int(a == axis) for a in range(3))
-            for batch, domain in local_domains(cells, partition, border, extend):
+            owners = list(only)
+            if owners[axis] is not None:
+                owners[axis] = np.asarray(owners[axis])[np.asarray(owners[axis]) < shape[axis]]
+            for batch, domain in local_domains(cells, partition, border, extend, budget, tuple(owners)):
                 problem = LocalProblem(domain, periodic=False)
                 solved = problem.solve(sealed_boundary(axis), "sealed", (axis,))
                 p = solved.pressures[0]
