@@ -6,10 +6,11 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import math
 import os
 import sys
 import textwrap
-from contextlib import contextmanager
+from contextlib import contextmanager, nullcontext
 from pathlib import Path
 
 from .errors import InputError
@@ -21,7 +22,9 @@ EXAMPLES = {
     "coarsen": """\
         upscale coarsen fields/demo.nc -o fields/demo_coarse.nc --ratio 5 5 5 --method flow --bc sealed
         upscale coarsen fine.nc -o coarse.nc --ratio 4 4 1 --edges z=0,3,10,20 --method arithmetic,arithmetic,harmonic
-        upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --method flow --bc periodic --border 2 --multipliers""",
+        upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --method flow --bc periodic --border 2 --multipliers
+        upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --memory 2GB --workers 2
+        upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --scheduler tcp://127.0.0.1:8786""",
     "inspect": "upscale inspect fields/demo.nc",
     "make-field": """\
         upscale make-field lognormal -o fields/random.nc --shape 60 220 85 --sigma 2 --correlation 8 8 2 --seed 1
@@ -64,6 +67,18 @@ def _edges_argument(text: str) -> tuple[str, list[int]]:
         raise argparse.ArgumentTypeError(f"edges must look like z=0,3,10,20, got '{text}'") from None
 
 
+def _add_parallel(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--memory", metavar="SIZE", help="memory budget of the whole run, e.g. 2GB or 800MB "
+                   "(default: half the memory available); a field that does not fit is processed in "
+                   "boxes of whole coarse blocks")
+    p.add_argument("--workers", type=int, metavar="N", help="run the boxes on N local worker processes")
+    p.add_argument("--box", nargs=3, type=int, metavar=("BX", "BY", "BZ"),
+                   help="coarse blocks per box along x, y, z when working in boxes (default: from --memory)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="run the boxes on a running dask.distributed "
+                   "cluster, e.g. tcp://10.0.0.5:8786 (the workers must see the same file paths; "
+                   "--memory is then the budget of each worker)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="upscale", description="Coarsen fine geomodels for flow simulation and "
                      "check that the coarse grid still flows like the fine one.")
@@ -85,6 +100,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--multipliers", action="store_true", help="compute flow-based transmissibility multipliers")
     p.add_argument("--multipliers-csv", metavar="FILE", help="also write all multipliers as CSV (i,j,k,direction,multiplier)")
     p.add_argument("--units", default="metric", help="transmissibility units: metric or field")
+    _add_parallel(p)
 
     p = _add(sub, "inspect", "summarise a field file: sizes, value ranges, heterogeneity")
     p.add_argument("file", help="field or coarse grid (NetCDF)")
@@ -104,6 +120,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--thickness", nargs="+", type=float, help="layer thicknesses in m (layered)")
     p.add_argument("--permeability", nargs="+", type=float, help="layer permeabilities in mD (layered)")
     p.add_argument("--channels", type=int, default=6, help="number of channels (channels)")
+    p.add_argument("--in-chunks", action="store_true", help="lognormal of any size, made and written chunk by "
+                   "chunk within --memory (another generator: the same seed gives another field)")
+    p.add_argument("--memory", metavar="SIZE", help="memory budget, e.g. 2GB (default: half the memory available)")
 
     p = _add(sub, "demo", "run the whole job on the built-in synthetic sector")
     p.add_argument("--dir", default=".", help="folder that receives fields/ and reports/ (default: here)")
@@ -138,11 +157,11 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 @contextmanager
-def progress_bar(total: int, label: str, quiet: bool):
+def progress_bar(total: int, label: str, quiet: bool, unit: str = "block"):
     """A tqdm bar on stderr (off when quiet or not a terminal); yields an update callable."""
     from tqdm import tqdm
 
-    bar = tqdm(total=total, desc=label, unit="block", disable=quiet or not sys.stderr.isatty(),
+    bar = tqdm(total=total, desc=label, unit=unit, disable=quiet or not sys.stderr.isatty(),
                file=sys.stderr, leave=False)
     try:
         yield bar.update
@@ -151,28 +170,40 @@ def progress_bar(total: int, label: str, quiet: bool):
 
 
 def _coarsen(args) -> int:
-    from .coarse_grid import coarsen
-    from .field import check_output_path, open_field, write
-    from .partition import make_partition
+    from .coarse_grid import coarsen, warn_flagged
+    from .field import check_output_path, write
+    from .parallel import cluster
 
     out = check_output_path(args.output, inputs=(args.fine,))
     table = check_output_path(args.multipliers_csv, inputs=(args.fine, args.output)) if args.multipliers_csv else None
     if table and not args.multipliers:
         raise InputError("--multipliers-csv needs --multipliers")
-    fine = open_field(args.fine)
-    edges = dict(args.edges)
-    shape = tuple(fine.sizes[d] for d in ("x", "y", "z"))
-    import numpy as np
+    if args.workers is not None and args.scheduler:
+        raise InputError("give --workers (local processes) or --scheduler (a running cluster), not both")
+    options = dict(ratio=args.ratio, edges=dict(args.edges), method=args.method, bc=args.bc, border=args.border,
+                   omega=args.omega, multipliers=args.multipliers, units=args.units)
+    plan = _memory_plan(args)
+    chunked = args.box is not None or plan.chunked(args.fine, args.method, args.multipliers)
+    if chunked:
+        from .parallel import keep_heap_small
 
-    coarse_shape = make_partition(shape, args.ratio, edges).shape
-    work = int(np.prod(coarse_shape)) if "flow" in args.method else 0
-    if args.multipliers:
-        work += sum(int(np.prod(coarse_shape)) * (n - 1) // n for n in coarse_shape)
-    with progress_bar(work, "local solves", args.quiet) as update:
-        coarse = coarsen(fine, ratio=args.ratio, edges=edges, method=args.method, bc=args.bc,
-                         border=args.border, omega=args.omega, multipliers=args.multipliers,
-                         units=args.units, progress=update)
-    write(coarse, out)
+        keep_heap_small()
+    with cluster(workers=args.workers, scheduler=args.scheduler) if chunked else nullcontext():
+        fine = plan.open(args.fine) if chunked else _open(args.fine)
+        if chunked:
+            from .parallel import box_count
+
+            coarse = coarsen(fine, memory=plan.box_memory, box=args.box, **options)
+            with progress_bar(box_count(coarse), "boxes", args.quiet, unit="box") as update:
+                write(coarse, out, progress=update)
+            import xarray as xr
+
+            with xr.open_dataset(out) as written:
+                coarse = written.load()
+            warn_flagged(coarse)
+        else:
+            coarse = _coarsen_in_memory(fine, options, args.quiet)
+            write(coarse, out)
     if table:
         from .field import atomic_write
         from .transmissibility import multiplier_csv
@@ -181,8 +212,37 @@ def _coarsen(args) -> int:
         atomic_write(table, lambda tmp: Path(tmp).write_text(text))
         print(f"wrote {table}")
     print(f"wrote {out} ({' x '.join(str(coarse.sizes[d]) for d in ('x', 'y', 'z'))} cells, "
-          f"method {coarse.attrs['method']})")
+          f"method {coarse.attrs['method']}{', in boxes' if chunked else ''})")
     return 0
+
+
+def _open(path):
+    from .field import open_field
+
+    return open_field(path)
+
+
+def _coarsen_in_memory(fine, options: dict, quiet: bool):
+    """``coarsen`` with a progress bar over the local solves."""
+    import numpy as np
+
+    from .coarse_grid import coarsen
+    from .partition import make_partition
+
+    shape = tuple(fine.sizes[d] for d in ("x", "y", "z"))
+    coarse_shape = make_partition(shape, options["ratio"], options["edges"]).shape
+    work = int(np.prod(coarse_shape)) if "flow" in options["method"] else 0
+    if options["multipliers"]:
+        work += sum(int(np.prod(coarse_shape)) * (n - 1) // n for n in coarse_shape)
+    with progress_bar(work, "local solves", quiet) as update:
+        return coarsen(fine, progress=update, **options)
+
+
+def _memory_plan(args):
+    from .parallel import MemoryPlan, parse_memory
+
+    return MemoryPlan(parse_memory(args.memory) if args.memory else None, getattr(args, "workers", None),
+                      bool(getattr(args, "scheduler", None)))
 
 
 def _inspect(args) -> int:
@@ -199,10 +259,28 @@ def _make_field(args) -> int:
     from .field import check_output_path, write
 
     out = check_output_path(args.output)
+    if args.in_chunks and args.kind != "lognormal":
+        raise InputError("--in-chunks is for lognormal fields")
+    shape = tuple(args.shape or (60, 220, 85))
+    lognormal = dict(shape=shape, sigma_ln=args.sigma, correlation_lengths=tuple(args.correlation),
+                     kv_kh=args.kv_kh, cell_size=tuple(args.cell), seed=args.seed)
+    plan = _memory_plan(args)
+    if args.kind == "lognormal" and args.in_chunks:
+        from .parallel import PROCESS_BYTES, box_count, keep_heap_small
+
+        keep_heap_small()
+        ds = synthetic.lognormal_field_in_chunks(chunk_cells=max((plan.memory - PROCESS_BYTES) // 400, 1),
+                                                 **lognormal)
+        with progress_bar(box_count(ds), "chunks", args.quiet, unit="chunk") as update:
+            write(ds, out, progress=update)
+        print(f"wrote {out}")
+        return 0
     if args.kind == "lognormal":
-        ds = synthetic.lognormal_field(shape=tuple(args.shape or (60, 220, 85)), sigma_ln=args.sigma,
-                                       correlation_lengths=tuple(args.correlation), kv_kh=args.kv_kh,
-                                       cell_size=tuple(args.cell), seed=args.seed)
+        need = synthetic.FFT_BYTES_PER_CELL * math.prod(shape)
+        if need > plan.memory:
+            raise InputError(f"a {' x '.join(map(str, shape))} field needs about {need / 2 ** 30:.1f} GB in memory "
+                             f"(budget {plan.memory / 2 ** 30:.1f} GB): add --in-chunks, or raise --memory")
+        ds = synthetic.lognormal_field(**lognormal)
     elif args.kind == "layered":
         if not args.thickness or not args.permeability or len(args.thickness) != len(args.permeability):
             raise InputError("layered fields need --thickness and --permeability with one value per layer")

@@ -102,7 +102,7 @@ def make_recipe(method="flow", bc: str = "sealed", border: int = 0, omega: float
 def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flow",
             bc: str = "sealed", border: int = 0, omega: float | None = None,
             multipliers: bool = False, units: str = "metric", progress=None,
-            memory: int | None = None) -> xr.Dataset:
+            memory: int | None = None, box: tuple[int, int, int] | None = None) -> xr.Dataset:
     """Coarsen a fine field.
 
     ratio: (rx, ry, rz) fine cells per coarse cell (remainders give a smaller last block);
@@ -112,17 +112,18 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
     border ring (fine cells) for ``flow``; multipliers: compute flow-based transmissibility
     multipliers; units: transmissibility units, metric or field.
 
-    A lazy field (``open_field(path, chunks=...)``) gives a lazy result: boxes of whole
-    coarse blocks sized for ``memory`` bytes per task (:mod:`upscale.parallel`), computed
-    when written (:func:`upscale.write`) or loaded. ``progress`` (in-memory fields only)
-    receives the number of blocks finished by each batch of local solves.
+    A lazy field (``open_field(path, chunks=...)``) gives a lazy result, computed when
+    written (:func:`upscale.write`) or loaded: boxes of ``box`` whole coarse blocks per
+    axis, or sized so that a process holding one stays within ``memory`` bytes
+    (:mod:`upscale.parallel`). ``progress`` (in-memory fields only) receives the number
+    of blocks finished by each batch of local solves.
     """
     recipe = make_recipe(method, bc, border, omega, multipliers, units)
     if is_lazy(fine):
         from .parallel import lazy_block_variables
 
         partition = make_partition(tuple(fine.sizes[d] for d in AXES), ratio=ratio, edges=edges)
-        variables = lazy_block_variables(fine, partition, recipe, memory)
+        variables = lazy_block_variables(fine, partition, recipe, memory, box)
         return assemble(variables, fine, partition, recipe)
     fine = validate(fine)
     cells = arrays(fine)

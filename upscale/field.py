@@ -15,6 +15,7 @@ import signal
 import sys
 import tempfile
 import threading
+import warnings
 from contextlib import contextmanager, nullcontext
 from dataclasses import dataclass
 from pathlib import Path
@@ -76,24 +77,27 @@ class FineArrays:
 
 def fine_dataset(kx, ky, kz, porosity, dx, dy, dz, ntg=None, active=None,
                  length_units: str = "m", attrs: dict | None = None) -> xr.Dataset:
-    """Build a dataset in the fine-field schema from numpy arrays.
+    """Build a dataset in the fine-field schema from numpy (or dask) arrays.
 
     Permeability in mD; dx (nx,), dy (ny,), dz (nz,) or (nx, ny, nz) in ``length_units``.
     """
-    kx = np.asarray(kx, dtype=float)
-    dz = np.asarray(dz, dtype=float)
+    def floats(a):  # dask arrays stay lazy
+        return a.astype(float) if hasattr(a, "dask") else np.asarray(a, dtype=float)
+
+    kx = floats(kx)
+    dz = floats(dz)
     cell = DIMS
     data = {
         "dx": (("x",), np.asarray(dx, dtype=float), {"units": length_units, "long_name": "cell size along x"}),
         "dy": (("y",), np.asarray(dy, dtype=float), {"units": length_units, "long_name": "cell size along y"}),
         "dz": (("z",) if dz.ndim == 1 else cell, dz, {"units": length_units, "long_name": "cell thickness"}),
         "kx": (cell, kx, {"units": "mD", "long_name": "permeability along x"}),
-        "ky": (cell, np.asarray(ky, dtype=float), {"units": "mD", "long_name": "permeability along y"}),
-        "kz": (cell, np.asarray(kz, dtype=float), {"units": "mD", "long_name": "permeability along z"}),
-        "porosity": (cell, np.asarray(porosity, dtype=float), {"units": "1", "long_name": "porosity"}),
+        "ky": (cell, floats(ky), {"units": "mD", "long_name": "permeability along y"}),
+        "kz": (cell, floats(kz), {"units": "mD", "long_name": "permeability along z"}),
+        "porosity": (cell, floats(porosity), {"units": "1", "long_name": "porosity"}),
     }
     if ntg is not None:
-        data["ntg"] = (cell, np.asarray(ntg, dtype=float), {"units": "1", "long_name": "net-to-gross"})
+        data["ntg"] = (cell, floats(ntg), {"units": "1", "long_name": "net-to-gross"})
     if active is not None:
         data["active"] = (cell, np.asarray(active, dtype=np.int8), {"long_name": "active cell flag"})
     ds = xr.Dataset({name: xr.Variable(*spec) for name, spec in data.items()})
@@ -201,7 +205,9 @@ def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
         # cell size must be refused as unknown units, not turned into dates
         # errstate: overflow or NaN from scale_factor/add_offset is reported by validate, not as
         # numpy warnings that break the one-line error
-        with np.errstate(all="ignore"):
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            # chunks along x also cut the (small) cell-size variables, stored whole
+            warnings.filterwarnings("ignore", message="The specified chunks separate", category=UserWarning)
             raw = xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False,
                                   chunks=chunks)
             if chunks is None:
@@ -252,11 +258,20 @@ def _first_flat_index(mask) -> int:
 
 
 def _count(checks: list[_Check]) -> tuple[int, ...]:
-    """Bad cells of every check, counted in one pass (dask computes them together)."""
+    """Bad cells of every check. A lazy field is counted slab by slab along x (its
+    chunks along x), one slab at a time, so that the pass holds one slab in memory."""
     import dask
 
-    # threads in this process: many small tasks, which a distributed scheduler would make slow
-    return tuple(int(n) for n in dask.compute(*[c.mask.data.sum() for c in checks], scheduler="threads"))
+    cube = next((c.mask for c in checks if c.mask.chunks is not None and c.mask.ndim == 3), None)
+    if cube is None:
+        return tuple(int(n) for n in dask.compute(*[c.mask.data.sum() for c in checks], scheduler="sync"))
+    edges = np.cumsum((0,) + cube.chunksizes["x"])
+    totals = np.zeros(len(checks), dtype=np.int64)
+    for first, (start, stop) in enumerate(zip(edges[:-1], edges[1:])):
+        parts = [c.mask.isel(x=slice(start, stop)).data.sum() if "x" in c.mask.dims
+                 else (c.mask.data.sum() if first == 0 else 0) for c in checks]
+        totals += np.array(dask.compute(*parts, scheduler="sync"), dtype=np.int64)
+    return tuple(int(n) for n in totals)
 
 
 def _refuse_first(checks: list[_Check], counts: tuple[int, ...], where: str) -> None:

@@ -6,10 +6,12 @@ the next block; :meth:`upscale.coarse_grid.Recipe.halo`) and runs the very same
 :func:`upscale.coarse_grid.block_variables` as an in-memory run, so the results agree to
 round-off whatever the chunking or the scheduler. Box sizes follow a memory budget.
 
-Runs go through a dask.distributed client: an in-process one with one worker thread
-(the compiled kernel is already parallel), ``workers`` local processes, or an existing
-cluster by scheduler address. The coarse result is streamed to NetCDF box by box by the
-calling process; the fine data never passes through it on a cluster.
+The writing process runs the task graph on its own threads and streams the coarse
+result to NetCDF box by box. Each box is one packed task (its small array pieces run
+inside it, since a scheduler costs milliseconds per task): computed here, one box at a
+time with the compiled kernel on every core, or sent to a dask.distributed client, either
+``workers`` local processes or a running cluster by scheduler address, where the fine data
+never passes through the writing process.
 """
 
 from __future__ import annotations
@@ -20,6 +22,7 @@ import os
 import re
 import threading
 from contextlib import contextmanager
+from pathlib import Path
 
 import numpy as np
 import xarray as xr
@@ -36,6 +39,25 @@ BOX_BYTES_PER_CELL = 800
 PROCESS_BYTES = 300 * 2 ** 20
 UNITS = {"": 1, "b": 1, "k": 2 ** 10, "kb": 2 ** 10, "m": 2 ** 20, "mb": 2 ** 20, "g": 2 ** 30, "gb": 2 ** 30,
          "t": 2 ** 40, "tb": 2 ** 40}
+
+
+#: arrays from this size up get their own memory map, returned to the system when freed
+#: (glibc otherwise raises its threshold after each free and keeps freed arrays in the heap:
+#: measured on the 8 M-cell benchmark, peak 960 MB instead of 750 MB at the same speed)
+MMAP_THRESHOLD = 4 * 2 ** 20
+
+
+def keep_heap_small() -> None:
+    """Fix glibc's memory-map threshold for this process (and, by the environment, for
+    worker processes started after); nothing elsewhere."""
+    os.environ.setdefault("MALLOC_MMAP_THRESHOLD_", str(MMAP_THRESHOLD))
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL("libc.so.6")
+        libc.mallopt(-3, MMAP_THRESHOLD)  # M_MMAP_THRESHOLD
+    except (OSError, AttributeError):
+        pass
 
 
 def parse_memory(text: str) -> int:
@@ -68,10 +90,73 @@ def default_memory() -> int:
     return available_memory() // 2
 
 
-def box_cells(memory: int, processes: int = 1) -> int:
-    """Fine cells per box so that ``processes`` processes stay within ``memory`` bytes."""
-    per_process = memory / max(processes, 1) - PROCESS_BYTES
-    return max(int(per_process // BOX_BYTES_PER_CELL), 1)
+#: bytes per fine cell of an in-memory run (field, its checked copy, the solves; measured
+#: 110-430 B in the solves alone, from static averages to flow with multipliers and border)
+IN_MEMORY_BYTES_PER_CELL = {"static": 250, "flow": 600}
+
+
+def box_cells(memory: int) -> int:
+    """Fine cells per box (window) so that one process holding one box stays within ``memory`` bytes."""
+    return max(int((memory - PROCESS_BYTES) // BOX_BYTES_PER_CELL), 1)
+
+
+class MemoryPlan:
+    """How a command fits its memory budget (bytes; None: :func:`default_memory`):
+    in memory when the field fits, else in boxes; ``workers`` local processes or a
+    ``cluster`` (where the budget is per worker) always use boxes."""
+
+    def __init__(self, memory: int | None, workers: int | None = None, cluster: bool = False):
+        self.memory = default_memory() if memory is None else memory
+        self.workers = workers
+        self.cluster = cluster
+        if workers is not None and workers < 1:
+            raise InputError(f"--workers must be at least 1, got {workers}")
+        if workers and not cluster:
+            least = (workers + 1) * PROCESS_BYTES + workers * 64 * 2 ** 20
+            if self.memory < least:
+                raise InputError(f"a memory budget of {self.memory / 2 ** 20:.0f} MB is too small for {workers} "
+                                 f"worker process(es): each process needs about {PROCESS_BYTES // 2 ** 20} MB "
+                                 f"before any work; give --memory {math.ceil(least / 2 ** 20)}MB or more, "
+                                 f"or fewer workers")
+
+    @property
+    def box_memory(self) -> int:
+        """Budget of one process holding one box."""
+        if self.cluster or not self.workers:
+            return self.memory
+        # the writing process and every worker hold a process's own memory; workers a box each
+        return int((self.memory - PROCESS_BYTES) / self.workers)
+
+    def chunked(self, path, method: str, multipliers: bool) -> bool:
+        """Boxes needed for the field in ``path``? (reads only the header)"""
+        if self.workers or self.cluster:
+            return True
+        import netCDF4
+
+        from .field import _probe_header
+
+        _probe_header(Path(path))
+        with netCDF4.Dataset(path) as nc:
+            cells = math.prod(len(nc.dimensions[d]) for d in DIMS if d in nc.dimensions)
+        per_cell = IN_MEMORY_BYTES_PER_CELL["flow" if ("flow" in str(method) or multipliers) else "static"]
+        return PROCESS_BYTES + cells * per_cell > self.memory
+
+    def open(self, path) -> xr.Dataset:
+        """Open a field lazily in slabs along x small enough for the checks to stay in
+        budget (about 1/32 of it per variable), whole multiples of the file's own chunks."""
+        import netCDF4
+
+        from .field import open_field
+
+        with netCDF4.Dataset(path) as nc:
+            sizes = {d: len(nc.dimensions[d]) for d in DIMS if d in nc.dimensions}
+            name = next((n for n in ("kx", "k") if n in nc.variables), None)
+            chunking = nc[name].chunking() if name else "contiguous"
+            dims = nc[name].dimensions if name else ()
+        native = chunking[dims.index("x")] if isinstance(chunking, list) and "x" in dims else 1
+        layer = 8 * math.prod(sizes.get(d, 1) for d in ("y", "z"))
+        slab = max(int(self.box_memory // 32 // max(layer, 1)) // native * native, native)
+        return open_field(path, chunks={"x": min(slab, sizes.get("x", 1)), "y": -1, "z": -1})
 
 
 def plan_boxes(partition: Partition, halo, cells: int) -> tuple[list[slice], list[slice], list[slice]]:
@@ -96,9 +181,11 @@ def plan_boxes(partition: Partition, halo, cells: int) -> tuple[list[slice], lis
 
 
 def lazy_block_variables(fine: xr.Dataset, partition: Partition, recipe, memory: int | None = None,
-                         processes: int = 1) -> dict:
+                         box: tuple[int, int, int] | None = None) -> dict:
     """The per-block variables of :func:`upscale.coarse_grid.block_variables` for a lazy
-    (dask-backed, normalised) field, as dask arrays chunked by boxes."""
+    (dask-backed, normalised) field, as dask arrays chunked by boxes: ``box`` coarse
+    blocks per box along x, y, z, or sized for ``memory`` bytes (default
+    :func:`default_memory`)."""
     import dask
     import dask.array as da
 
@@ -107,13 +194,19 @@ def lazy_block_variables(fine: xr.Dataset, partition: Partition, recipe, memory:
 
     memory = default_memory() if memory is None else int(memory)
     halo = recipe.halo(partition)
-    boxes = plan_boxes(partition, halo, box_cells(memory, processes))
+    if box is None:
+        boxes = plan_boxes(partition, halo, box_cells(memory))
+    else:
+        if len(box) != 3 or any(int(b) != b or b < 1 for b in box):
+            raise InputError(f"box must be three whole numbers of coarse blocks >= 1 (x, y, z), got {box}")
+        boxes = tuple([slice(i, min(i + int(b), n)) for i in range(0, n, int(b))]
+                      for b, n in zip(box, partition.shape))
     fine_chunks = tuple(tuple(int(partition.edges[a][b.stop] - partition.edges[a][b.start]) for b in boxes[a])
                         for a in range(3))
     cube = {n: fine[n].data.rechunk(fine_chunks) if hasattr(fine[n].data, "dask") else fine[n].data
             for n in ("dz", "kx", "ky", "kz", "porosity", "ntg", "active")}
     lines = {n: np.asarray(fine[n].values, dtype=float) for n in ("dx", "dy")}
-    budget = max(min(box_cells(memory, processes) * BOX_BYTES_PER_CELL // 4, 256 * 2 ** 20), 16 * 2 ** 20)
+    budget = max(min(box_cells(memory) * BOX_BYTES_PER_CELL // 4, 256 * 2 ** 20), 16 * 2 ** 20)
 
     def box_task(dx, dy, window_partition, blocks, **values):
         values["active"] = np.asarray(values["active"]).astype(bool)
