@@ -122,6 +122,8 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
     if is_lazy(fine):
         from .parallel import lazy_block_variables
 
+        if "length_units_in" not in fine.attrs:  # not from open_field / validate: check it (one pass)
+            fine = validate(fine)
         partition = make_partition(tuple(fine.sizes[d] for d in AXES), ratio=ratio, edges=edges)
         variables = lazy_block_variables(fine, partition, recipe, memory, box)
         return assemble(variables, fine, partition, recipe)

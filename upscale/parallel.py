@@ -90,6 +90,10 @@ def default_memory() -> int:
     return available_memory() // 2
 
 
+#: layers along x per chunk when a file is stored contiguously (not in chunks)
+CONTIGUOUS_LAYERS = 4
+#: largest stored (HDF5) chunk the box writer makes: boxes read whole stored chunks
+STORED_CHUNK_BYTES = 8 * 2 ** 20
 #: bytes per fine cell of an in-memory run (field, its checked copy, the solves; measured
 #: 110-430 B in the solves alone, from static averages to flow with multipliers and border)
 IN_MEMORY_BYTES_PER_CELL = {"static": 250, "flow": 600}
@@ -153,9 +157,10 @@ class MemoryPlan:
             name = next((n for n in ("kx", "k") if n in nc.variables), None)
             chunking = nc[name].chunking() if name else "contiguous"
             dims = nc[name].dimensions if name else ()
-        native = chunking[dims.index("x")] if isinstance(chunking, list) and "x" in dims else 1
+        # a box reads whole chunks: keep them as thin as the file's own (or a few layers)
+        native = chunking[dims.index("x")] if isinstance(chunking, list) and "x" in dims else CONTIGUOUS_LAYERS
         layer = 8 * math.prod(sizes.get(d, 1) for d in ("y", "z"))
-        slab = max(int(self.box_memory // 32 // max(layer, 1)) // native * native, native)
+        slab = max(min(int(self.box_memory // 32 // max(layer, 1)), native), 1)
         return open_field(path, chunks={"x": min(slab, sizes.get("x", 1)), "y": -1, "z": -1})
 
 
@@ -454,13 +459,16 @@ def _check_pieces(written: dict, ds: xr.Dataset, path) -> None:
 
 
 def _define(handle, ds: xr.Dataset) -> None:
-    """Dimensions, variables (zlib level 1) and attributes of ``ds`` in an open file."""
+    """Dimensions, variables (zlib level 1; stored in chunks of at most
+    :data:`STORED_CHUNK_BYTES`, thin along the first axis) and attributes of ``ds``."""
     for dim, size in ds.sizes.items():
         handle.createDimension(dim, size)
     for name, var in ds.variables.items():
         chunks = None
         if var.chunks is not None:
             chunks = [max(min(c), 1) for c in var.chunks]
+            rest = var.dtype.itemsize * math.prod(chunks[1:])
+            chunks[0] = max(min(chunks[0], STORED_CHUNK_BYTES // max(rest, 1)), 1)
         created = handle.createVariable(name, var.dtype, var.dims, zlib=True, complevel=1, chunksizes=chunks)
         created.setncatts({k: _attribute(v) for k, v in var.attrs.items()})
     handle.setncatts({k: _attribute(v) for k, v in ds.attrs.items()})
