@@ -186,6 +186,18 @@ def _probe_header(path: Path) -> None:
         raise InputError(f"{path}: not a readable NetCDF file ({message})")
 
 
+def check_readable(path: str | os.PathLike) -> Path:
+    """Refuse a missing file, a folder, or a file whose header the NetCDF library cannot
+    open (:func:`_probe_header`)."""
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: no such file")
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder, expected a NetCDF file")
+    _probe_header(path)
+    return path
+
+
 def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
     """Read and validate a fine (or coarse) field file; returns a normalised Dataset.
 
@@ -194,12 +206,7 @@ def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
     (``coarsen`` aligns the chunks to whole coarse blocks). Raises :class:`InputError`
     naming the variable, the problem and the first bad cell.
     """
-    path = Path(path)
-    if not path.exists():
-        raise InputError(f"{path}: no such file")
-    if path.is_dir():
-        raise InputError(f"{path}: is a folder, expected a NetCDF file")
-    _probe_header(path)
+    path = check_readable(path)
     try:
         # no time decoding: a field holds no times, and units such as 'days since ...' on a
         # cell size must be refused as unknown units, not turned into dates

@@ -22,7 +22,6 @@ import os
 import re
 import threading
 from contextlib import contextmanager
-from pathlib import Path
 
 import numpy as np
 import xarray as xr
@@ -137,10 +136,9 @@ class MemoryPlan:
             return True
         import netCDF4
 
-        from .field import _probe_header
+        from .field import check_readable
 
-        _probe_header(Path(path))
-        with netCDF4.Dataset(path) as nc:
+        with netCDF4.Dataset(check_readable(path)) as nc:
             cells = math.prod(len(nc.dimensions[d]) for d in DIMS if d in nc.dimensions)
         per_cell = IN_MEMORY_BYTES_PER_CELL["flow" if ("flow" in str(method) or multipliers) else "static"]
         return PROCESS_BYTES + cells * per_cell > self.memory
@@ -150,9 +148,9 @@ class MemoryPlan:
         budget (about 1/32 of it per variable), whole multiples of the file's own chunks."""
         import netCDF4
 
-        from .field import open_field
+        from .field import check_readable, open_field
 
-        with netCDF4.Dataset(path) as nc:
+        with netCDF4.Dataset(check_readable(path)) as nc:
             sizes = {d: len(nc.dimensions[d]) for d in DIMS if d in nc.dimensions}
             name = next((n for n in ("kx", "k") if n in nc.variables), None)
             chunking = nc[name].chunking() if name else "contiguous"

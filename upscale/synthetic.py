@@ -195,6 +195,29 @@ def lognormal_permeability(shape, geometric_mean_md: float, sigma_ln: float,
     return k
 
 
+def _lognormal_parameters(shape, kv_kh, porosity_mean, cell_size, sigma_ln, geometric_mean_md):
+    """Checked parameters of the lognormal fields: shape, kv/kh, mean porosity, cell sizes
+    (m), sigma of ln k, geometric mean (mD)."""
+    shape = _shape(shape, ndims=(3,))
+    kv_kh = _number("kv_kh", kv_kh, low=0.0)
+    porosity_mean = _number("porosity_mean", porosity_mean, *POROSITY_CLIP)
+    sizes = np.asarray(cell_size, dtype=float)
+    if sizes.shape != (3,) or not np.all(np.isfinite(sizes)) or np.any(sizes <= 0):
+        raise InputError(f"cell_size {cell_size!r} must be three sizes (dx, dy, dz) in m, all > 0")
+    sigma = _number("sigma_ln", sigma_ln, low=0.0)
+    mean = _number("geometric_mean_md", geometric_mean_md, low=0.0, low_open=True)
+    return shape, kv_kh, porosity_mean, sizes, sigma, mean
+
+
+def _porosity(score: np.ndarray, noise: np.ndarray, porosity_mean: float) -> np.ndarray:
+    """porosity_mean + 0.25 porosity_mean (0.8 score + 0.6 noise), clipped (in place on noise)."""
+    noise *= 0.6
+    noise += 0.8 * score
+    noise *= 0.25 * porosity_mean
+    noise += porosity_mean
+    return np.clip(noise, *POROSITY_CLIP, out=noise)
+
+
 def lognormal_field(shape=(60, 220, 85), sigma_ln: float = 2.0, correlation_lengths=(8, 8, 2),
                     kv_kh: float = 0.1, cell_size=(20.0, 10.0, 2.0), geometric_mean_md: float = 100.0,
                     porosity_mean: float = 0.2, seed=0) -> xr.Dataset:
@@ -205,23 +228,13 @@ def lognormal_field(shape=(60, 220, 85), sigma_ln: float = 2.0, correlation_leng
     (0.8 g + 0.6 w), g the normal score of ln k and w white noise (correlation with ln k
     about 0.8), clipped to [0.02, 0.35]; ntg = 1.
     """
-    shape = _shape(shape, ndims=(3,))
-    kv_kh = _number("kv_kh", kv_kh, low=0.0)
-    porosity_mean = _number("porosity_mean", porosity_mean, *POROSITY_CLIP)
-    sizes = np.asarray(cell_size, dtype=float)
-    if sizes.shape != (3,) or not np.all(np.isfinite(sizes)) or np.any(sizes <= 0):
-        raise InputError(f"cell_size {cell_size!r} must be three sizes (dx, dy, dz) in m, all > 0")
-    sigma = _number("sigma_ln", sigma_ln, low=0.0)
-    mean = _number("geometric_mean_md", geometric_mean_md, low=0.0, low_open=True)
+    shape, kv_kh, porosity_mean, sizes, sigma, mean = _lognormal_parameters(
+        shape, kv_kh, porosity_mean, cell_size, sigma_ln, geometric_mean_md)
     field_seed, noise_seed = np.random.default_rng(seed).spawn(2)
 
     score = gaussian_field(shape, correlation_lengths, field_seed)
     k = mean * np.exp(sigma * score)  # = lognormal_permeability(shape, mean, sigma, lengths, field_seed)
-    porosity = 0.6 * np.random.default_rng(noise_seed).standard_normal(shape)
-    porosity += 0.8 * score
-    porosity *= 0.25 * porosity_mean
-    porosity += porosity_mean
-    np.clip(porosity, *POROSITY_CLIP, out=porosity)
+    porosity = _porosity(score, np.random.default_rng(noise_seed).standard_normal(shape), porosity_mean)
     del score
     nx, ny, nz = shape
     attrs = {
@@ -315,14 +328,8 @@ def lognormal_field_in_chunks(shape, sigma_ln: float = 2.0, correlation_lengths=
     """
     import dask.array as da
 
-    shape = _shape(shape, ndims=(3,))
-    kv_kh = _number("kv_kh", kv_kh, low=0.0)
-    porosity_mean = _number("porosity_mean", porosity_mean, *POROSITY_CLIP)
-    sizes = np.asarray(cell_size, dtype=float)
-    if sizes.shape != (3,) or not np.all(np.isfinite(sizes)) or np.any(sizes <= 0):
-        raise InputError(f"cell_size {cell_size!r} must be three sizes (dx, dy, dz) in m, all > 0")
-    sigma = _number("sigma_ln", sigma_ln, low=0.0)
-    mean = _number("geometric_mean_md", geometric_mean_md, low=0.0, low_open=True)
+    shape, kv_kh, porosity_mean, sizes, sigma, mean = _lognormal_parameters(
+        shape, kv_kh, porosity_mean, cell_size, sigma_ln, geometric_mean_md)
     lengths = _lengths(correlation_lengths, 3)
     field_seed, noise_seed = np.random.SeedSequence(seed).spawn(2)
     nx, ny, nz = shape
@@ -335,8 +342,7 @@ def lognormal_field_in_chunks(shape, sigma_ln: float = 2.0, correlation_lengths=
 
     def porosity(g, block_info=None):
         start, stop = zip(*block_info[0]["array-location"])
-        phi = 0.6 * _tile_noise(noise_seed, start, stop) + 0.8 * g
-        return np.clip(porosity_mean + 0.25 * porosity_mean * phi, *POROSITY_CLIP)
+        return _porosity(g, _tile_noise(noise_seed, start, stop), porosity_mean)
 
     g = da.map_blocks(score, template, dtype=float)
     k = mean * da.exp(sigma * g)
