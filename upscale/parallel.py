@@ -145,7 +145,7 @@ class MemoryPlan:
 
     def open(self, path) -> xr.Dataset:
         """Open a field lazily in slabs along x small enough for the checks to stay in
-        budget (about 1/32 of it per variable), whole multiples of the file's own chunks."""
+        budget (about 1/32 of it per variable) and no thicker than the file's own chunks."""
         import netCDF4
 
         from .field import check_readable, open_field
@@ -206,8 +206,8 @@ def lazy_block_variables(fine: xr.Dataset, partition: Partition, recipe, memory:
                       for b, n in zip(box, partition.shape))
     fine_chunks = tuple(tuple(int(partition.edges[a][b.stop] - partition.edges[a][b.start]) for b in boxes[a])
                         for a in range(3))
-    cube = {n: fine[n].data.rechunk(fine_chunks) if hasattr(fine[n].data, "dask") else fine[n].data
-            for n in ("dz", "kx", "ky", "kz", "porosity", "ntg", "active")}
+    cube = {n: da.asarray(fine[n].data).rechunk(fine_chunks) for n in ("dz", "kx", "ky", "kz", "porosity", "ntg",
+                                                                       "active")}
     lines = {n: np.asarray(fine[n].values, dtype=float) for n in ("dx", "dy")}
     budget = max(min(box_cells(memory) * BOX_BYTES_PER_CELL // 4, 256 * 2 ** 20), 16 * 2 ** 20)
 
@@ -343,12 +343,9 @@ def stream_write(ds: xr.Dataset, path, progress=None) -> None:
     for name, var in lazy.items():
         starts = [np.concatenate([[0], np.cumsum(c)[:-1]]) for c in var.chunks]
         blocks = var.data.to_delayed(optimize_graph=False)
-        for index in np.ndindex(*blocks.shape):
-            key = [0, 0, 0]
-            for dim, i in zip(var.dims, index):
-                key[_axis_of(dim)] = i
+        for index, key in _box_keys(var):
             region = tuple((int(s[i]), int(s[i]) + int(c[i])) for s, c, i in zip(starts, var.chunks, index))
-            groups.setdefault(tuple(key), []).append((name, region, blocks[index]))
+            groups.setdefault(key, []).append((name, region, blocks[index]))
     with _file_access():
         handle = netCDF4.Dataset(path, "w", format="NETCDF4")
 
@@ -429,13 +426,19 @@ def box_count(ds: xr.Dataset) -> int:
     keys = set()
     for var in ds.variables.values():
         if var.chunks is not None:
-            grid = [range(len(c)) for c in var.chunks]
-            for index in np.ndindex(*[len(g) for g in grid]):
-                key = [0, 0, 0]
-                for dim, i in zip(var.dims, index):
-                    key[_axis_of(dim)] = i
-                keys.add(tuple(key))
+            keys.update(key for _, key in _box_keys(var))
     return len(keys)
+
+
+def _box_keys(var: xr.Variable):
+    """(chunk index, box key) of every chunk of a dask-backed variable; the key counts
+    chunks along x, y, z (face dimensions such as x_face count with their axis), 0 on
+    axes the variable lacks, so the pieces of one box share a key."""
+    for index in np.ndindex(*[len(c) for c in var.chunks]):
+        key = [0, 0, 0]
+        for dim, i in zip(var.dims, index):
+            key[_axis_of(dim)] = i
+        yield index, tuple(key)
 
 
 def _check_pieces(written: dict, ds: xr.Dataset, path) -> None:
