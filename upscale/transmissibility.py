@@ -1,8 +1,11 @@
-"""Coarse face transmissibilities from coarse permeability (two-point flux).
+"""Face transmissibilities: flow-based values from two-block local problems, multipliers,
+barrier summaries, unit systems, and reading a coarse file's faces.
 
-T = C / (1/T1 + 1/T2) with T_i = k_i A_i / (L_i / 2) from each block's own face area and
-length along the direction; 0 where either block is inactive. C converts mD*m to
-m3*cP/(day*bar) (metric) or mD*ft to rb*cP/(day*psi) (field); see :mod:`upscale.units`.
+The transmissibility from the coarse permeability written beside them is the two-point
+flux value T = C / (1/T1 + 1/T2), T_i = k_i A_i / (L_i / 2) from each block's own face
+area and length, 0 where either block is inactive (:func:`upscale.coarse_grid.assemble`,
+from the blocks' half-cell values). C converts mD*m to m3*cP/(day*bar) (metric) or
+mD*ft to rb*cP/(day*psi) (field); see :mod:`upscale.units`.
 """
 
 from __future__ import annotations
@@ -13,10 +16,8 @@ import xarray as xr
 from .errors import InputError
 from .field import FineArrays
 from .local import BATCH_BYTES, LocalProblem, local_domains, sealed_boundary
-from .partition import Partition
-from .tpfa import transmissibilities
+from .partition import AXES, Partition
 from .units import TRANSMISSIBILITY_UNITS
-from .partition import AXES
 
 
 def unit_system(units: str) -> tuple[str, float, float]:
@@ -24,21 +25,6 @@ def unit_system(units: str) -> tuple[str, float, float]:
     if units not in TRANSMISSIBILITY_UNITS:
         raise InputError(f"unknown transmissibility units '{units}'; choose metric or field")
     return TRANSMISSIBILITY_UNITS[units]
-
-
-def coarse_transmissibility(k_effective: tuple[np.ndarray, np.ndarray, np.ndarray], dx, dy, dz,
-                            active: np.ndarray, units: str = "metric") -> list[np.ndarray]:
-    """Interior-face transmissibilities along x, y, z of a coarse grid.
-
-    ``k_effective`` are the permeabilities that carry flow (mD; horizontal values already
-    multiplied by net-to-gross); ``dx`` (NX,), ``dy`` (NY,), ``dz`` (NX, NY, NZ) in m.
-    Returns three arrays with NX-1, NY-1, NZ-1 faces on their axis, in ``units``.
-    """
-    _, constant, to_length = unit_system(units)
-    k = tuple(np.where(active, kk, 0.0) for kk in k_effective)
-    # T scales with length (A / L): mD*m -> mD*ft multiplies by the metres-to-feet factor.
-    _, faces = transmissibilities(k, dx, dy, dz)
-    return [constant * to_length * f for f in faces]
 
 
 def _mean_pressure(domain, p: np.ndarray, connected: np.ndarray, region: tuple[slice, ...]) -> np.ndarray:
