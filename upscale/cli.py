@@ -10,7 +10,7 @@ import math
 import os
 import sys
 import textwrap
-from contextlib import contextmanager, nullcontext
+from contextlib import contextmanager
 from pathlib import Path
 
 from .errors import InputError
@@ -171,7 +171,7 @@ def progress_bar(total: int, label: str, quiet: bool, unit: str = "block"):
 
 def _coarsen(args) -> int:
     from .coarse_grid import coarsen, warn_flagged
-    from .field import check_output_path, write
+    from .field import check_output_path, open_field, write
     from .parallel import cluster
 
     out = check_output_path(args.output, inputs=(args.fine,))
@@ -188,8 +188,8 @@ def _coarsen(args) -> int:
         from .parallel import keep_heap_small
 
         keep_heap_small()
-    with cluster(workers=args.workers, scheduler=args.scheduler) if chunked else nullcontext():
-        fine = plan.open(args.fine) if chunked else _open(args.fine)
+    with cluster(workers=args.workers, scheduler=args.scheduler):  # none unless asked for
+        fine = plan.open(args.fine) if chunked else open_field(args.fine)
         if chunked:
             from .parallel import box_count
 
@@ -214,12 +214,6 @@ def _coarsen(args) -> int:
     print(f"wrote {out} ({' x '.join(str(coarse.sizes[d]) for d in ('x', 'y', 'z'))} cells, "
           f"method {coarse.attrs['method']}{', in boxes' if chunked else ''})")
     return 0
-
-
-def _open(path):
-    from .field import open_field
-
-    return open_field(path)
 
 
 def _coarsen_in_memory(fine, options: dict, quiet: bool):
