@@ -87,6 +87,21 @@ def test_boxes_give_the_in_memory_answer(field_path, tmp_path, options):
     _assert_same(expected, _written(lazy, tmp_path / "coarse.nc"))
 
 
+@pytest.mark.parametrize("options", CASES, ids=lambda o: "-".join(f"{k}={v}" for k, v in o.items()))
+def test_declared_block_variables_are_those_computed(options):
+    """A lazy run declares the variables of a box before computing it: the declaration
+    must match what the computation returns, name for name."""
+    from upscale.coarse_grid import block_variable_names, block_variables, make_recipe
+    from upscale.field import arrays, validate
+
+    keys = {k: options[k] for k in ("method", "bc", "border", "omega", "multipliers", "units") if k in options}
+    recipe = make_recipe(**keys)
+    cells = arrays(validate(_random_field(shape=(6, 4, 4))))
+    partition = make_partition(cells.shape, ratio=(3, 2, 2))
+    computed = block_variables(cells, partition, tuple(slice(0, n) for n in partition.shape), recipe)
+    assert sorted(computed) == sorted(block_variable_names(recipe))
+
+
 @settings(max_examples=4, deadline=None)
 @given(box=st.tuples(st.integers(1, 3), st.integers(1, 3), st.integers(1, 3)),
        z_edges=st.lists(st.integers(1, 8), min_size=1, max_size=3, unique=True))

@@ -208,6 +208,23 @@ def block_variables(cells: FineArrays, partition: Partition, blocks: tuple[slice
     return out
 
 
+def block_variable_names(recipe: Recipe) -> list[str]:
+    """The names :func:`block_variables` returns for ``recipe`` (a lazy run declares
+    them before any box is computed)."""
+    names = ["dz", "kx", "ky", "kz", "porosity", "ntg", "pore_volume", "bulk_volume", "active"]
+    if recipe.flow or recipe.multipliers:
+        names.append("solve_residual")
+    if recipe.flow and recipe.bc == "linear":
+        names.append("tensor_asymmetry")
+    if recipe.full:
+        names += ["kxy", "kxz", "kyz"]
+    names += [f"k{a}_{side}_bound" for a in AXES for side in ("lower", "upper")]
+    names += [f"half_{a}" for a in AXES]
+    if recipe.multipliers:
+        names += [f"t{a}_flow" for a in AXES]
+    return names
+
+
 HORIZONTAL = np.array([[1, 1, 0], [1, 1, 0], [0, 0, 0]], dtype=bool)
 
 #: attributes of the per-block variables written to a coarse file

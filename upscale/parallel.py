@@ -239,17 +239,7 @@ def lazy_block_variables(fine: xr.Dataset, partition: Partition, recipe, memory:
 
 def _box_outputs(partition: Partition, recipe, boxes):
     """Names of the variables a box task returns, and their shape per box index."""
-    names = ["dz", "kx", "ky", "kz", "porosity", "ntg", "pore_volume", "bulk_volume", "active"]
-    if recipe.flow or recipe.multipliers:
-        names.append("solve_residual")
-    if recipe.flow and recipe.bc == "linear":
-        names.append("tensor_asymmetry")
-    if recipe.full:
-        names += ["kxy", "kxz", "kyz"]
-    names += [f"k{a}_{side}_bound" for a in AXES for side in ("lower", "upper")]
-    names += [f"half_{a}" for a in AXES]
-    if recipe.multipliers:
-        names += [f"t{a}_flow" for a in AXES]
+    from .coarse_grid import block_variable_names
 
     def shape(name: str, index) -> tuple[int, int, int]:
         sizes = [boxes[a][i].stop - boxes[a][i].start for a, i in enumerate(index)]
@@ -259,7 +249,7 @@ def _box_outputs(partition: Partition, recipe, boxes):
                 sizes[axis] -= 1
         return tuple(sizes)
 
-    return names, shape
+    return block_variable_names(recipe), shape
 
 
 # ----------------------------------------------------------------------------- running
