@@ -221,8 +221,7 @@ def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
                 with raw:
                     raw = raw.load()
     except Exception as exc:  # netCDF4 raises OSError, ValueError, RuntimeError...
-        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise InputError(f"{path}: not a readable NetCDF file ({reason})") from None
+        raise _unreadable(path, exc) from None
     raw.attrs["source_path"] = str(path.resolve())
     raw.attrs["source_sha256"] = file_checksum(path)
     try:
@@ -231,10 +230,16 @@ def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
     except InputError:
         raw.close()
         raise
-    except Exception as exc:  # a lazy read failing part-way through the file
+    except Exception as exc:
         raw.close()
-        reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise InputError(f"{path}: not a readable NetCDF file ({reason})") from None
+        if chunks is None:  # the data were read above: a fault of ours, not of the file
+            raise
+        raise _unreadable(path, exc) from None  # a lazy read failing part-way through the file
+
+
+def _unreadable(path: Path, exc: Exception) -> InputError:
+    reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    return InputError(f"{path}: not a readable NetCDF file ({reason})")
 
 
 @dataclass(frozen=True)
