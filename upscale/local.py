@@ -27,9 +27,10 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
-from functools import cached_property
+from functools import cached_property, lru_cache
 
 import numpy as np
+from numba import njit, prange
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
@@ -37,7 +38,7 @@ from .errors import InputError
 from .field import FineArrays
 from .partition import BlockGroup, Partition, block_groups
 from .solvers import solve_batch
-from .tpfa import harmonic_pair, half_transmissibility
+from .tpfa import harmonic_pair
 
 log = logging.getLogger(__name__)
 BOUNDARY_CONDITIONS = ("sealed", "periodic", "linear")
@@ -125,62 +126,121 @@ class Couplings:
     wrap: list[np.ndarray | None]
 
 
-def _couplings(domain: LocalDomain, periodic: bool) -> Couplings:
-    volume = domain.volume
-    half = [half_transmissibility(domain.k[a], volume, domain.lengths[a]) for a in range(3)]
-    inner, wrap = [], []
-    for a in range(3):
-        n = domain.shape[a]
-        inner.append(harmonic_pair(_take(half[a], a, slice(0, n - 1)), _take(half[a], a, slice(1, n))))
-        wrap.append(harmonic_pair(_take(half[a], a, n - 1), _take(half[a], a, 0)) if periodic else None)
-    return Couplings(half, inner, wrap)
-
-
-def _pattern(shape, couplings: Couplings):
-    """Flattened coupling list for the solver: natural cell indices (E,) x 2 and values (nb, E)."""
+@lru_cache(maxsize=64)
+def _layout(shape: tuple[int, int, int], periodic: bool):
+    """Coupling list of a local shape: natural cell indices ``first``, ``second`` (E,), and
+    per axis the start of its interior faces and of its wrap faces (-1: none) in the list.
+    Order: per axis, the interior faces (C order, n - 1 along the axis), then its wrap
+    faces (last cell to first) for periodic problems with more than one cell along it."""
     index = np.arange(int(np.prod(shape))).reshape(shape)
-    first, second, values = [], [], []
-    nb = couplings.half[0].shape[0]
+    first, second = [], []
+    inner_start, wrap_start = np.zeros(3, dtype=np.int64), np.full(3, -1, dtype=np.int64)
+    size = 0
     for a in range(3):
         n = shape[a]
+        inner_start[a] = size
         first.append(np.take(index, np.arange(n - 1), axis=a).ravel())
         second.append(np.take(index, np.arange(1, n), axis=a).ravel())
-        values.append(couplings.inner[a].reshape(nb, -1))
-        if couplings.wrap[a] is not None and n > 1:
+        size += first[-1].size
+        if periodic and n > 1:
+            wrap_start[a] = size
             first.append(np.take(index, [n - 1], axis=a).ravel())
             second.append(np.take(index, [0], axis=a).ravel())
-            values.append(couplings.wrap[a].reshape(nb, -1))
-    return np.concatenate(first), np.concatenate(second), np.concatenate(values, axis=1)
+            size += first[-1].size
+    return np.concatenate(first), np.concatenate(second), inner_start, wrap_start
 
 
-def _coupling_sum(domain: LocalDomain, couplings: Couplings) -> np.ndarray:
-    """Sum of the transmissibilities joining each cell to its neighbours (nb, sx, sy, sz)."""
-    total = np.zeros(domain.k[0].shape)
+@njit(cache=True)
+def _series(h1, h2):  # pragma: no cover - compiled
+    """Series combination of two half transmissibilities, 0 if both are 0 (as tpfa.harmonic_pair)."""
+    total = h1 + h2
+    return h1 * h2 / total if total > 0.0 else 0.0
+
+
+@njit(parallel=True, cache=True)
+def _fill_couplings(kx, ky, kz, lx, ly, lz, inner_start, wrap_start, half, values, total):  # pragma: no cover
+    """Half transmissibilities (3, nb, sx, sy, sz), the coupling list values (nb, E) in
+    :func:`_layout` order and each cell's coupling sum (nb, sx, sy, sz), all mD*m, from
+    permeabilities and cell lengths (nb, sx, sy, sz); the formulas of :mod:`upscale.tpfa`
+    in one pass."""
+    nb, sx, sy, sz = kx.shape
+    size = (sx, sy, sz)
+    for b in prange(nb):
+        for i in range(sx):
+            for j in range(sy):
+                for k in range(sz):
+                    x, y, z = lx[b, i, j, k], ly[b, i, j, k], lz[b, i, j, k]
+                    volume = x * y * z
+                    half[0, b, i, j, k] = 2.0 * kx[b, i, j, k] * volume / (x * x) if x > 0.0 else 0.0
+                    half[1, b, i, j, k] = 2.0 * ky[b, i, j, k] * volume / (y * y) if y > 0.0 else 0.0
+                    half[2, b, i, j, k] = 2.0 * kz[b, i, j, k] * volume / (z * z) if z > 0.0 else 0.0
+                    total[b, i, j, k] = 0.0
+        for i in range(sx):
+            for j in range(sy):
+                for k in range(sz):
+                    cell = (i, j, k)
+                    for a in range(3):
+                        step = (int(a == 0), int(a == 1), int(a == 2))
+                        if cell[a] < size[a] - 1:
+                            i2, j2, k2 = i + step[0], j + step[1], k + step[2]
+                            e = inner_start[a] + (i * (sy - step[1]) + j) * (sz - step[2]) + k
+                        elif wrap_start[a] >= 0:
+                            i2, j2, k2 = i * (1 - step[0]), j * (1 - step[1]), k * (1 - step[2])
+                            e = wrap_start[a] + (i2 * (1 if a == 1 else sy) + j2) * (1 if a == 2 else sz) + k2
+                        else:
+                            continue
+                        t = _series(half[a, b, i, j, k], half[a, b, i2, j2, k2])
+                        values[b, e] = t
+                        total[b, i, j, k] += t
+                        total[b, i2, j2, k2] += t
+
+
+def _couplings(domain: LocalDomain, periodic: bool):
+    """Couplings of a batch, the coupling list (first, second, values) for the solver and
+    each cell's coupling sum (nb, sx, sy, sz)."""
+    shape, nb = domain.shape, domain.count
+    first, second, inner_start, wrap_start = _layout(shape, periodic)
+    half = np.empty((3, nb) + shape)
+    values = np.empty((nb, first.size))
+    total = np.empty((nb,) + shape)
+    _fill_couplings(*(np.asarray(k, dtype=float) for k in domain.k),
+                    *(np.asarray(length, dtype=float) for length in domain.lengths),
+                    inner_start, wrap_start, half, values, total)
+    inner, wrap = [], []
     for a in range(3):
-        n = domain.shape[a]
-        _take(total, a, slice(0, n - 1))[...] += couplings.inner[a]
-        _take(total, a, slice(1, n))[...] += couplings.inner[a]
-        if couplings.wrap[a] is not None and n > 1:
-            _take(total, a, n - 1)[...] += couplings.wrap[a]
-            _take(total, a, 0)[...] += couplings.wrap[a]
-    return total
+        faces = list((nb,) + shape)
+        faces[a + 1] -= 1
+        inner.append(values[:, inner_start[a]:inner_start[a] + int(np.prod(faces[1:]))].reshape(faces))
+        if not periodic:
+            wrap.append(None)
+        elif wrap_start[a] >= 0:
+            faces[a + 1] = 1
+            wrap.append(values[:, wrap_start[a]:wrap_start[a] + int(np.prod(faces[1:]))].reshape(faces))
+        else:  # one cell along the axis: joined to its own image, outside the coupling list
+            wrap.append(harmonic_pair(half[a], half[a]))
+    return Couplings(list(half), inner, wrap), (first, second, values), total
 
 
-def _components(first, second, values, nb: int, n: int) -> np.ndarray:
-    """Connected-component label of every cell (nb * n,) over positive transmissibilities.
+def _components(first, second, values, nb: int, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Connected-component label of every cell (nb * n,) over positive transmissibilities,
+    and the first cell of every component (flat indices).
 
     A domain whose couplings are all positive is one component (labelled by its index);
     only the others go through the graph search.
     """
-    labels = np.repeat(np.arange(nb), n).reshape(nb, n)
+    labels = np.repeat(np.arange(nb), n)
     broken = np.flatnonzero(np.any(values <= 0, axis=1))
-    if broken.size:
-        b, e = np.nonzero(values[broken] > 0)
-        rows, cols = b * n + first[e], b * n + second[e]
-        size = broken.size * n
-        graph = coo_matrix((np.ones(rows.size, dtype=np.int8), (rows, cols)), shape=(size, size))
-        labels[broken] = nb + connected_components(graph.tocsr(), directed=False)[1].reshape(broken.size, n)
-    return labels.ravel()
+    whole = np.setdiff1d(np.arange(nb), broken, assume_unique=True)
+    if not broken.size:
+        return labels, whole * n
+    b, e = np.nonzero(values[broken] > 0)
+    rows, cols = b * n + first[e], b * n + second[e]
+    size = broken.size * n
+    graph = coo_matrix((np.ones(rows.size, dtype=np.int8), (rows, cols)), shape=(size, size))
+    found = connected_components(graph.tocsr(), directed=False)[1]
+    labels.reshape(nb, n)[broken] = nb + found.reshape(broken.size, n)
+    local_start = np.unique(found, return_index=True)[1]
+    return labels, np.concatenate([whole * n, broken[local_start // n] * n + local_start % n])
 
 
 @dataclass
@@ -342,11 +402,8 @@ class LocalProblem:
         self.domain = domain
         nb, shape = domain.count, domain.shape
         self.n = int(np.prod(shape))
-        self.couplings = _couplings(domain, periodic)
-        self.first, self.second, self.values = _pattern(shape, self.couplings)
-        self.labels = _components(self.first, self.second, self.values, nb, self.n)
-        self.component_start = np.unique(self.labels, return_index=True)[1]
-        self.coupling_sum = _coupling_sum(domain, self.couplings)
+        self.couplings, (self.first, self.second, self.values), self.coupling_sum = _couplings(domain, periodic)
+        self.labels, self.component_start = _components(self.first, self.second, self.values, nb, self.n)
         self.pos, self.width = _band_order(shape, periodic)
 
     def solve(self, boundary: Boundary, bc: str, cases: tuple[int, ...]) -> Solved:
@@ -355,14 +412,12 @@ class LocalProblem:
         nb = domain.count
         diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.labels,
                                             self.component_start)
-        banded_diag = np.empty((nb, n))
-        banded_diag[:, pos] = diag.reshape(nb, n)
-        rhs = np.zeros((nb, len(cases), n))
+        rhs = np.empty((nb, len(cases), n))
         for column, case in enumerate(cases):
-            rhs[:, column, pos] = _right_hand_side(domain, self.couplings, boundary, bc, case).reshape(nb, n)
-        solution, residual = solve_batch(pos[self.first], pos[self.second], self.values, banded_diag, rhs,
+            rhs[:, column] = _right_hand_side(domain, self.couplings, boundary, bc, case).reshape(nb, n)
+        solution, residual = solve_batch(self.first, self.second, pos, self.values, diag.reshape(nb, n), rhs,
                                          self.width)
-        pressures = [solution[:, column, pos].reshape((nb,) + domain.shape) for column in range(len(cases))]
+        pressures = [solution[:, column].reshape((nb,) + domain.shape) for column in range(len(cases))]
         return Solved(pressures, touch, connected, residual)
 
     def inflow(self, p: np.ndarray, d: int) -> np.ndarray:
@@ -510,12 +565,13 @@ def local_domains(fine: FineArrays, partition: Partition, border: int = 0, exten
     """Yield (batch, LocalDomain) for every block (extended by ``extend`` blocks per axis),
     or for the blocks whose coarse indices per axis are in ``only``."""
     k = fine.flow_permeability()
+    dz = np.ascontiguousarray(fine.dz)  # gathered from once per batch: no copy each time
     for group in block_groups(partition, border, extend, only):
         for batch in _batches(group, budget):
             full = (batch.count,) + batch.shape
             lx = np.broadcast_to(batch.gather_line(fine.dx, 0)[:, :, None, None], full)
             ly = np.broadcast_to(batch.gather_line(fine.dy, 1)[:, None, :, None], full)
-            yield batch, LocalDomain(k=tuple(batch.gather(a) for a in k), lengths=(lx, ly, batch.gather(fine.dz)),
+            yield batch, LocalDomain(k=tuple(batch.gather(a) for a in k), lengths=(lx, ly, batch.gather(dz)),
                                      target=batch.target)
 
 

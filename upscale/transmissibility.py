@@ -27,13 +27,19 @@ def unit_system(units: str) -> tuple[str, float, float]:
     return TRANSMISSIBILITY_UNITS[units]
 
 
-def _mean_pressure(domain, p: np.ndarray, connected: np.ndarray, region: tuple[slice, ...]) -> np.ndarray:
-    """Bulk-volume-weighted mean pressure over the connected cells of ``region`` (nb,)."""
-    sl = (slice(None),) + region
-    weight = (domain.volume * connected)[sl].reshape(domain.count, -1)
-    total = weight.sum(axis=1)
-    weighted = (weight * p[sl].reshape(domain.count, -1)).sum(axis=1)
-    return np.divide(weighted, total, out=np.full(domain.count, np.nan), where=total > 0)
+def _pressure_drop(domain, p: np.ndarray, connected: np.ndarray, first: tuple[slice, ...],
+                   second: tuple[slice, ...]) -> np.ndarray:
+    """Difference of the bulk-volume-weighted mean pressures over the connected cells of
+    two regions (nb,); NaN where a region has no connected cell."""
+    weight = domain.volume * connected
+    weighted = weight * p
+    means = []
+    for region in (first, second):
+        sl = (slice(None),) + region
+        total = weight[sl].sum(axis=(1, 2, 3))
+        means.append(np.divide(weighted[sl].sum(axis=(1, 2, 3)), total, out=np.full(domain.count, np.nan),
+                               where=total > 0))
+    return means[0] - means[1]
 
 
 def flow_transmissibility(cells: FineArrays, partition: Partition, border: int = 0, units: str = "metric",
@@ -67,8 +73,7 @@ def flow_transmissibility(cells: FineArrays, partition: Partition, border: int =
                 solved = problem.solve(sealed_boundary(axis), "sealed", (axis,))
                 p = solved.pressures[0]
                 rate = problem.inflow(p, axis)
-                drop = (_mean_pressure(domain, p, solved.connected, batch.target)
-                        - _mean_pressure(domain, p, solved.connected, _neighbour_region(batch, axis)))
+                drop = _pressure_drop(domain, p, solved.connected, batch.target, _neighbour_region(batch, axis))
                 through = problem.connected_through(solved.touch, axis) & (drop > 0)
                 value = np.divide(rate, drop, out=np.zeros(domain.count), where=through)
                 batch.scatter(t, constant * to_length * value)
