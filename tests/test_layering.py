@@ -331,3 +331,38 @@ def test_layers_command_line(tmp_path):
     assert done.returncode == 0, done.stderr
     assert "optimal: edges [0, 2, 7, 10]" in done.stdout
     assert (tmp_path / "layers.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def _dataset(cells):
+    """The normalised dataset of a FineArrays (as :func:`upscale.field.open_field` gives)."""
+    return field.validate(field.fine_dataset(cells.kx, cells.ky, cells.kz, cells.porosity, cells.dx, cells.dy,
+                                             cells.dz, ntg=cells.ntg, active=cells.active.astype(int)))
+
+
+@FAST
+@given(st.integers(0, 10_000), st.lists(st.integers(1, 4), min_size=1, max_size=7))
+def test_statistics_read_in_slabs_equal_those_in_memory(seed, slabs):
+    # Property: per-layer sums over slabs of whole columns, the ln kh variance combined by
+    # the pairwise update of Chan, Golub & LeVeque (1983), "Algorithms for computing the
+    # sample variance: analysis and recommendations", The American Statistician 37
+    # (from memory), give the one-pass result whatever the slabs (the in-memory
+    # statistics are checked against direct sums above).
+    cells = random_cells(seed, nx=7)
+    sizes = []
+    while sum(sizes) < 7:
+        sizes.append(min(slabs[len(sizes) % len(slabs)], 7 - sum(sizes)))
+    lazy = _dataset(cells).chunk({"x": tuple(sizes)})
+    expected, found = layer_statistics(cells), layer_statistics(lazy)
+    assert found.keys() == expected.keys()
+    for key in expected:
+        np.testing.assert_allclose(found[key], expected[key], rtol=1e-11, atol=1e-12, equal_nan=True, err_msg=key)
+
+
+def test_layers_command_reads_in_slabs_and_reports_as_in_memory(tmp_path, capsys):
+    from upscale.cli import main
+
+    cells = random_cells(5, nx=9, ny=5, nz=8)
+    path = tmp_path / "fine.nc"
+    _dataset(cells).to_netcdf(path)
+    assert main(["layers", str(path), "--target", "3", "--memory", "400MB"]) == 0
+    assert capsys.readouterr().out.strip() == format_comparison(compare_groupings(cells, 3)).strip()

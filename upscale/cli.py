@@ -148,6 +148,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--edges", type=lambda t: [int(v) for v in t.replace(",", " ").split()],
                    help="a grouping to judge, e.g. 0,3,10,20")
     p.add_argument("--figure", help="PNG file for the layer profile")
+    p.add_argument("--memory", metavar="SIZE", help="memory budget, e.g. 2GB (default: half the memory "
+                   "available); the field is read in slabs along x that fit it")
 
     p = _add(sub, "bench", "time the upscaling against the plain per-block approach")
     p.add_argument("--shape", nargs=3, type=int, default=(60, 220, 85), metavar=("NX", "NY", "NZ"))
@@ -306,15 +308,14 @@ def _check(args) -> int:
 
 
 def _layers(args) -> int:
-    from .field import arrays, open_field
     from .layering import compare_groupings, format_comparison, layer_statistics, plot_layer_profile
 
-    cells = arrays(open_field(args.fine))
-    result = compare_groupings(cells, args.target, edges=args.edges)
+    stats = layer_statistics(_memory_plan(args).open(args.fine))  # read slab by slab along x
+    result = compare_groupings(stats, args.target, edges=args.edges)
     print(format_comparison(result))
     if args.figure:
         groupings = {name: value["edges"] for name, value in result.items() if "edges" in value}
-        plot_layer_profile(layer_statistics(cells), groupings, args.figure)
+        plot_layer_profile(stats, groupings, args.figure)
         print(f"wrote {args.figure}")
     return 0
 

@@ -56,7 +56,7 @@ def _ratio(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
     return out
 
 
-def layer_statistics(cells: FineArrays) -> dict:
+def layer_statistics(cells) -> dict:
     """Per-fine-layer statistics, each a float array of shape (nz,).
 
     With ``b`` the cell bulk volume (m3), sums running over the cells of one layer:
@@ -78,41 +78,81 @@ def layer_statistics(cells: FineArrays) -> dict:
                       along x in a layer-cake); ``flow_share_y`` likewise.
 
     Statistics of an empty set (no active cell, or weight 0 for the ln kh ones) are NaN,
-    except sums and thickness, which are 0.
+    except sums and thickness, which are 0. ``cells`` is a FineArrays, or a lazy field
+    (``open_field(path, chunks=...)``), read one slab along x at a time: every statistic is
+    built from per-layer sums over slabs (the ln kh variance by the pairwise update of
+    Chan, Golub & LeVeque 1983), so the result does not depend on the slabs.
     """
+    if isinstance(cells, FineArrays):
+        sums = _layer_sums(cells)
+    else:
+        from .field import arrays
+
+        slabs = cells.chunks.get("x") or (cells.sizes["x"],)
+        starts = np.concatenate([[0], np.cumsum(slabs)])
+        sums = None
+        for lo, hi in zip(starts[:-1], starts[1:]):
+            part = _layer_sums(arrays(cells.isel(x=slice(int(lo), int(hi)))))
+            sums = part if sums is None else _combine(sums, part)
+    return _statistics(sums)
+
+
+def _layer_sums(cells: FineArrays) -> dict:
+    """Per-layer sums of a box of cells (all columns of some x range), each (nz,), from
+    which :func:`_statistics` builds the statistics; ``lnk_m2`` is the weighted sum of
+    squared deviations of ln kh from ``lnk_mean`` (the mean of these cells)."""
     active = np.asarray(cells.active, dtype=bool)
     bulk = cells.bulk_volume * active
     kh_x, kh_y, kz = cells.flow_permeability()
     has_log = active & (kh_x > 0)
     w = bulk * has_log
     lnk = np.log(np.where(has_log, kh_x, 1.0))
-
-    bulk_volume = _layer_sum(bulk)
     weight = _layer_sum(w)
-    area = (cells.dx[:, None, None] * cells.dy[None, :, None]) * active
-    thickness = np.nan_to_num(_ratio(bulk_volume, _layer_sum(area)))
-    lnk_mean = _ratio(_layer_sum(w * lnk), weight)
-    centred = lnk - np.nan_to_num(lnk_mean)[None, None, :]
-    lnk_var = _ratio(_layer_sum(w * centred**2), weight)
-    kh_mean = _ratio(_layer_sum(bulk * kh_x), bulk_volume)
-
-    # Harmonic mean of kz: any active cell with kz = 0 blocks it (0); no active cell: NaN.
-    blocked = _layer_sum(active & (kz <= 0)) > 0
-    inverse = _layer_sum(np.where(active & (kz > 0), bulk / np.where(kz > 0, kz, 1.0), 0.0))
-    kz_harmonic = np.where(blocked, 0.0, _ratio(bulk_volume, inverse))
-    kz_harmonic[bulk_volume <= 0] = np.nan
-    porosity_mean = _ratio(_layer_sum(bulk * cells.porosity * cells.ntg), bulk_volume)
-
+    lnk_mean = np.nan_to_num(_ratio(_layer_sum(w * lnk), weight))
     dz = cells.dz * active
-    capacity_x = _layer_sum(kh_x * cells.dy[None, :, None] * dz * cells.dx[:, None, None]) / cells.dx.sum()
-    capacity_y = _layer_sum(kh_y * cells.dx[:, None, None] * dz * cells.dy[None, :, None]) / cells.dy.sum()
-    share_x = _ratio(capacity_x, np.array(capacity_x.sum()))
-    share_y = _ratio(capacity_y, np.array(capacity_y.sum()))
-    return {"bulk_volume": bulk_volume, "weight": weight, "thickness": thickness,
-            "lnk_mean": lnk_mean, "lnk_var": lnk_var, "kh_mean": kh_mean,
-            "kz_harmonic": kz_harmonic, "porosity_mean": porosity_mean,
+    return {
+        "bulk_volume": _layer_sum(bulk), "weight": weight, "lnk_mean": lnk_mean,
+        "lnk_m2": _layer_sum(w * (lnk - lnk_mean[None, None, :]) ** 2),
+        "area": _layer_sum((cells.dx[:, None, None] * cells.dy[None, :, None]) * active),
+        "kh_volume": _layer_sum(bulk * kh_x),
+        # harmonic mean of kz: any active cell with kz = 0 blocks it
+        "kz_blocked": _layer_sum(active & (kz <= 0)).astype(float),
+        "kz_inverse": _layer_sum(np.where(active & (kz > 0), bulk / np.where(kz > 0, kz, 1.0), 0.0)),
+        "pore_volume": _layer_sum(bulk * cells.porosity * cells.ntg),
+        "flow_x": _layer_sum(kh_x * cells.dy[None, :, None] * dz * cells.dx[:, None, None]),
+        "flow_y": _layer_sum(kh_y * cells.dx[:, None, None] * dz * cells.dy[None, :, None]),
+        "length_x": np.full(weight.shape, cells.dx.sum()), "dy": cells.dy,
+    }
+
+
+def _combine(a: dict, b: dict) -> dict:
+    """Sums of two boxes of whole columns side by side along x (Chan, Golub & LeVeque 1983
+    for the weighted mean and squared deviations of ln kh)."""
+    out = {key: a[key] + b[key] for key in a if key not in ("lnk_mean", "lnk_m2", "dy")}
+    weight = out["weight"]
+    share = np.divide(b["weight"], weight, out=np.zeros_like(weight), where=weight > 0)
+    delta = b["lnk_mean"] - a["lnk_mean"]
+    out["lnk_mean"] = a["lnk_mean"] + delta * share
+    out["lnk_m2"] = a["lnk_m2"] + b["lnk_m2"] + delta ** 2 * a["weight"] * share
+    out["dy"] = a["dy"]
+    return out
+
+
+def _statistics(sums: dict) -> dict:
+    """The statistics of :func:`layer_statistics` from per-layer sums."""
+    bulk_volume, weight = sums["bulk_volume"], sums["weight"]
+    kz_harmonic = np.where(sums["kz_blocked"] > 0, 0.0, _ratio(bulk_volume, sums["kz_inverse"]))
+    kz_harmonic[bulk_volume <= 0] = np.nan
+    capacity_x = sums["flow_x"] / sums["length_x"]
+    capacity_y = sums["flow_y"] / sums["dy"].sum()
+    return {"bulk_volume": bulk_volume, "weight": weight,
+            "thickness": np.nan_to_num(_ratio(bulk_volume, sums["area"])),
+            "lnk_mean": np.where(weight > 0, sums["lnk_mean"], np.nan), "lnk_var": _ratio(sums["lnk_m2"], weight),
+            "kh_mean": _ratio(sums["kh_volume"], bulk_volume), "kz_harmonic": kz_harmonic,
+            "porosity_mean": _ratio(sums["pore_volume"], bulk_volume),
             "capacity_x": capacity_x, "capacity_y": capacity_y,
-            "flow_share_x": share_x, "flow_share_y": share_y}
+            "flow_share_x": _ratio(capacity_x, np.array(capacity_x.sum())),
+            "flow_share_y": _ratio(capacity_y, np.array(capacity_y.sum()))}
 
 
 # --------------------------------------------------------------------------------------------
@@ -366,13 +406,15 @@ def uniform_grouping(nz: int, n_groups: int) -> list[int]:
     return [int(g * int(nz) // n_groups) for g in range(n_groups + 1)]
 
 
-def compare_groupings(cells: FineArrays, n_groups: int, edges=None) -> dict:
-    """Judge the optimal and the uniform grouping into ``n_groups`` (and ``edges`` if given).
+def compare_groupings(cells, n_groups: int, edges=None) -> dict:
+    """Judge the optimal and the uniform grouping into ``n_groups`` (and ``edges`` if given)
+    of a field (FineArrays or lazy, as :func:`layer_statistics` takes) or of its
+    statistics (the dict :func:`layer_statistics` returns).
 
     Returns ``{"optimal": judge, "uniform": judge[, "given": judge]}`` with the dicts of
     :func:`judge_grouping`; ``edges`` may have any number of groups.
     """
-    stats = layer_statistics(cells)
+    stats = cells if isinstance(cells, dict) else layer_statistics(cells)
     nz = stats["weight"].size
     result = {"optimal": judge_grouping(stats, optimal_grouping(stats, n_groups)),
               "uniform": judge_grouping(stats, uniform_grouping(nz, n_groups))}
