@@ -147,7 +147,10 @@ def _layout(shape: tuple[int, int, int], periodic: bool):
             first.append(np.take(index, [n - 1], axis=a).ravel())
             second.append(np.take(index, [0], axis=a).ravel())
             size += first[-1].size
-    return np.concatenate(first), np.concatenate(second), inner_start, wrap_start
+    layout = (np.concatenate(first), np.concatenate(second), inner_start, wrap_start)
+    for array in layout:
+        array.setflags(write=False)  # shared by every batch of this shape
+    return layout
 
 
 @njit(cache=True)
@@ -565,7 +568,7 @@ def local_domains(fine: FineArrays, partition: Partition, border: int = 0, exten
     """Yield (batch, LocalDomain) for every block (extended by ``extend`` blocks per axis),
     or for the blocks whose coarse indices per axis are in ``only``."""
     k = fine.flow_permeability()
-    dz = np.ascontiguousarray(fine.dz)  # gathered from once per batch: no copy each time
+    dz = np.ascontiguousarray(fine.dz)  # made contiguous once, so that no batch's gather copies it
     for group in block_groups(partition, border, extend, only):
         for batch in _batches(group, budget):
             full = (batch.count,) + batch.shape
