@@ -366,3 +366,13 @@ def test_layers_command_reads_in_slabs_and_reports_as_in_memory(tmp_path, capsys
     _dataset(cells).to_netcdf(path)
     assert main(["layers", str(path), "--target", "3", "--memory", "400MB"]) == 0
     assert capsys.readouterr().out.strip() == format_comparison(compare_groupings(cells, 3)).strip()
+
+
+def test_layers_command_refuses_a_figure_path_before_any_work(tmp_path, capsys):
+    from upscale.cli import main
+
+    path = tmp_path / "fine.nc"
+    _dataset(random_cells(6)).to_netcdf(path)
+    assert main(["layers", str(path), "--target", "2", "--figure", str(tmp_path / "missing" / "p.png")]) == 2
+    out, err = capsys.readouterr()
+    assert out == "" and "does not exist" in err

@@ -308,8 +308,11 @@ def _check(args) -> int:
 
 
 def _layers(args) -> int:
+    from .field import check_output_path
     from .layering import compare_groupings, format_comparison, layer_statistics, plot_layer_profile
 
+    if args.figure:
+        check_output_path(args.figure, (args.fine,))  # before the work, not after it
     stats = layer_statistics(_memory_plan(args).open(args.fine))  # read slab by slab along x
     result = compare_groupings(stats, args.target, edges=args.edges)
     print(format_comparison(result))
