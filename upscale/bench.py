@@ -18,7 +18,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from .field import arrays, validate
-from .local import _band_order, flow_tensors
+from .local import band_order, flow_tensors
 from .partition import block_groups, make_partition
 from .static import STATIC_METHODS, cardwell_parsons, static_average
 from .synthetic import lognormal_field
@@ -96,7 +96,7 @@ def _factor_work(shape) -> int:
     """Multiply-adds of the banded Cholesky factorisation of one local problem of ``shape``
     (no-flow sides; band order and half width as the solver uses them)."""
     n = int(np.prod(shape))
-    _, width = _band_order(tuple(shape), periodic=False)
+    _, width = band_order(tuple(shape), periodic=False)
     reach = np.minimum(width, n - 1 - np.arange(n))
     return int((reach * (reach + 1) // 2).sum())
 

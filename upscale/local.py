@@ -88,7 +88,7 @@ def _take(a: np.ndarray, axis: int, index: int | slice) -> np.ndarray:
     return a[tuple(sl)]
 
 
-def _band_order(shape: tuple[int, int, int], periodic: bool) -> tuple[np.ndarray, int]:
+def band_order(shape: tuple[int, int, int], periodic: bool) -> tuple[np.ndarray, int]:
     """Band position of each cell (natural C order) and the half bandwidth.
 
     The largest axis varies slowest. For periodic problems each axis is visited in the
@@ -407,7 +407,7 @@ class LocalProblem:
         self.n = int(np.prod(shape))
         self.couplings, (self.first, self.second, self.values), self.coupling_sum = _couplings(domain, periodic)
         self.labels, self.component_start = _components(self.first, self.second, self.values, nb, self.n)
-        self.pos, self.width = _band_order(shape, periodic)
+        self.pos, self.width = band_order(shape, periodic)
 
     def solve(self, boundary: Boundary, bc: str, cases: tuple[int, ...]) -> Solved:
         """Solve one system for the unit-gradient cases along the given axes."""
@@ -552,7 +552,7 @@ def _positive_semidefinite(k: np.ndarray) -> np.ndarray:
 def _batches(group: BlockGroup, budget: int):
     """Split a group along its first block axis so that each batch fits ``budget`` bytes."""
     n = int(np.prod(group.shape))
-    _, width = _band_order(group.shape, periodic=True)
+    _, width = band_order(group.shape, periodic=True)
     per_block = 8 * n * (3 * (width + 1) + 60)
     per_x = per_block * len(group.blocks[1]) * len(group.blocks[2])
     step = max(1, budget // max(per_x, 1))
