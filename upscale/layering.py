@@ -121,20 +121,20 @@ def _layer_sums(cells: FineArrays) -> dict:
         "pore_volume": _layer_sum(bulk * cells.porosity * cells.ntg),
         "flow_x": _layer_sum(kh_x * cells.dy[None, :, None] * dz * cells.dx[:, None, None]),
         "flow_y": _layer_sum(kh_y * cells.dx[:, None, None] * dz * cells.dy[None, :, None]),
-        "length_x": np.full(weight.shape, cells.dx.sum()), "dy": cells.dy,
+        "length_x": cells.dx.sum(), "length_y": cells.dy.sum(),  # slabs along x share the y extent
     }
 
 
 def _combine(a: dict, b: dict) -> dict:
     """Sums of two boxes of whole columns side by side along x (Chan, Golub & LeVeque 1983
     for the weighted mean and squared deviations of ln kh)."""
-    out = {key: a[key] + b[key] for key in a if key not in ("lnk_mean", "lnk_m2", "dy")}
+    out = {key: a[key] + b[key] for key in a if key not in ("lnk_mean", "lnk_m2", "length_y")}
     weight = out["weight"]
     share = np.divide(b["weight"], weight, out=np.zeros_like(weight), where=weight > 0)
     delta = b["lnk_mean"] - a["lnk_mean"]
     out["lnk_mean"] = a["lnk_mean"] + delta * share
     out["lnk_m2"] = a["lnk_m2"] + b["lnk_m2"] + delta ** 2 * a["weight"] * share
-    out["dy"] = a["dy"]
+    out["length_y"] = a["length_y"]
     return out
 
 
@@ -144,7 +144,7 @@ def _statistics(sums: dict) -> dict:
     kz_harmonic = np.where(sums["kz_blocked"] > 0, 0.0, _ratio(bulk_volume, sums["kz_inverse"]))
     kz_harmonic[bulk_volume <= 0] = np.nan
     capacity_x = sums["flow_x"] / sums["length_x"]
-    capacity_y = sums["flow_y"] / sums["dy"].sum()
+    capacity_y = sums["flow_y"] / sums["length_y"]
     return {"bulk_volume": bulk_volume, "weight": weight,
             "thickness": np.nan_to_num(_ratio(bulk_volume, sums["area"])),
             "lnk_mean": np.where(weight > 0, sums["lnk_mean"], np.nan), "lnk_var": _ratio(sums["lnk_m2"], weight),
