@@ -111,7 +111,14 @@ def test_ctrl_c_while_writing_cleans_up(tmp_path, cli_command, cli_env):
 
 @pytest.fixture
 def flow_field(tmp_path) -> Path:
-    """A field whose flow-based coarsening takes a few seconds."""
+    """A field whose flow-based coarsening takes a few seconds. The local-solve kernels are
+    compiled (and cached for the command) first, so that the interrupt lands in the solves,
+    not in numba's compiler (a Ctrl-C there is numba's to handle: see DEVELOPERS.md)."""
+    from upscale.local import flow_tensors
+    from upscale.partition import make_partition
+
+    small = field.arrays(field.validate(synthetic.lognormal_field(shape=(8, 8, 8), seed=1)))
+    flow_tensors(small, make_partition((8, 8, 8), ratio=(4, 4, 4)), "sealed")
     path = tmp_path / "fine.nc"
     field.write(synthetic.lognormal_field(shape=(40, 40, 40), seed=5), path)
     return path
