@@ -443,8 +443,9 @@ def check_output_path(path: str | os.PathLike, inputs: tuple = ()) -> Path:
 
 
 @contextmanager
-def interrupt_after():
-    """Hold Ctrl-C (SIGINT) back until the block has finished, then raise KeyboardInterrupt.
+def interrupt_after(until: str = "the file being written is closed"):
+    """Hold Ctrl-C (SIGINT) back until the block has finished, then raise KeyboardInterrupt;
+    ``until`` ends the message printed when one arrives.
 
     A KeyboardInterrupt raised inside the NetCDF library's Python layer can land between
     taking a file lock and the code that releases it; closing the file then waits on that
@@ -458,8 +459,7 @@ def interrupt_after():
 
     def hold(signum, frame):
         if not received:
-            print("upscale: interrupt received; stopping once the file being written is closed",
-                  file=sys.stderr, flush=True)
+            print(f"upscale: interrupt received; stopping once {until}", file=sys.stderr, flush=True)
         received.append(signum)
 
     previous = signal.signal(signal.SIGINT, hold)

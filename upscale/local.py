@@ -37,7 +37,7 @@ from scipy.sparse.csgraph import connected_components
 from .errors import InputError
 from .field import FineArrays
 from .partition import BlockGroup, Partition, block_groups
-from .solvers import solve_batch
+from .solvers import first_call, solve_batch
 from .tpfa import harmonic_pair
 
 log = logging.getLogger(__name__)
@@ -206,9 +206,10 @@ def _couplings(domain: LocalDomain, periodic: bool):
     half = np.empty((3, nb) + shape)
     values = np.empty((nb, first.size))
     total = np.empty((nb,) + shape)
-    _fill_couplings(*(np.asarray(k, dtype=float) for k in domain.k),
-                    *(np.asarray(length, dtype=float) for length in domain.lengths),
-                    inner_start, wrap_start, half, values, total)
+    with first_call(_fill_couplings):
+        _fill_couplings(*(np.asarray(k, dtype=float) for k in domain.k),
+                        *(np.asarray(length, dtype=float) for length in domain.lengths),
+                        inner_start, wrap_start, half, values, total)
     inner, wrap = [], []
     for a in range(3):
         faces = list((nb,) + shape)

@@ -25,6 +25,8 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from numba import njit
 
+from .solvers import first_call
+
 SETUP_SEED = 20261202
 
 
@@ -101,7 +103,8 @@ class LineSmoother:
         upper[rows[inside & (cols == rows + 1)]] = A.data[inside & (cols == rows + 1)]
         lower[rows[inside & (cols == rows - 1)]] = A.data[inside & (cols == rows - 1)]
         self.upper = upper
-        self.factor, self.inverse_pivot = _thomas_factors(lower, A.diagonal(), upper, self.starts)
+        with first_call(_thomas_factors):
+            self.factor, self.inverse_pivot = _thomas_factors(lower, A.diagonal(), upper, self.starts)
         # Copies of the index arrays: eliminate_zeros works in place.
         self.rest = sp.csr_matrix((np.where(inside | (cols == rows), 0.0, A.data), cols.copy(), A.indptr.copy()),
                                   shape=A.shape)
@@ -111,8 +114,9 @@ class LineSmoother:
         """One sweep in place, lines in order (``forward``) or in reverse; the two are each
         other's adjoint, which keeps the V-cycle symmetric."""
         R = self.rest
-        _line_sweep(R.indptr, R.indices, R.data, self.factor, self.upper, self.inverse_pivot,
-                    self.starts, x, b, forward)
+        with first_call(_line_sweep):
+            _line_sweep(R.indptr, R.indices, R.data, self.factor, self.upper, self.inverse_pivot,
+                        self.starts, x, b, forward)
 
 
 @njit(cache=True)

@@ -18,11 +18,23 @@ assembly of the whole batch; 8 lanes about 1.4x faster than one system at a time
 
 from __future__ import annotations
 
+from contextlib import nullcontext
+
 import numpy as np
 from numba import njit, prange
 
+from .field import interrupt_after
+
 
 LANES = 8  # systems factored side by side in SIMD lanes
+
+
+def first_call(kernel):
+    """Context for a call of a numba ``kernel``: on its first call in this process (when it
+    compiles, or loads from the cache) Ctrl-C is held until the call returns. Measured:
+    an interrupt landing in numba's compiler was lost (the run went on) or ended in a
+    traceback."""
+    return nullcontext() if kernel.signatures else interrupt_after("the compiled kernels are ready")
 
 
 @njit(cache=True, fastmath=True)
@@ -171,9 +183,10 @@ def solve_batch(first: np.ndarray, second: np.ndarray, position: np.ndarray, val
     def exact(array, dtype):
         return np.ascontiguousarray(array, dtype=dtype)
 
-    x, relative, ok = solve_assembled(exact(first, np.int64), exact(second, np.int64), exact(position, np.int64),
-                                      exact(values, float), exact(diagonal, float), exact(rhs, float),
-                                      int(width), int(refinements), float(tolerance))
+    with first_call(solve_assembled):
+        x, relative, ok = solve_assembled(exact(first, np.int64), exact(second, np.int64),
+                                          exact(position, np.int64), exact(values, float), exact(diagonal, float),
+                                          exact(rhs, float), int(width), int(refinements), float(tolerance))
     if not ok.all():
         raise FloatingPointError(f"{int((~ok).sum())} local system(s) not positive definite")
     return x, relative
