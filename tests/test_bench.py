@@ -21,7 +21,10 @@ def test_face_to_sealed_work_on_a_row_of_two_blocks():
 
 def test_bench_runs_and_agrees_with_the_plain_loop(capsys):
     figures = run_bench(shape=(10, 10, 10), sample=4)
-    assert "x the sealed time" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "x the sealed time" in out and "multipliers add" in out
+    assert figures["added_multiplier_to_sealed"] == pytest.approx(
+        (figures["together_seconds"] - figures["sealed_seconds"]) / figures["sealed_seconds"])
     assert figures["max_relative_difference_sealed"] < 1e-10
     assert figures["max_relative_difference_periodic"] < 1e-10
     # 2 x 2 x 2 blocks: 24 sealed solves of 5 x 5 x 5 cells, 4 face problems of two blocks

@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from upscale.local import LocalDomain, _couplings, _layout
-from upscale.solvers import solve_batch
+from upscale.solvers import solve_batch, solve_batch_with_lead
 from upscale.tpfa import half_transmissibility, harmonic_pair
 
 
@@ -40,6 +40,39 @@ def test_batched_solve_matches_scipy(reverse):
         for column in range(2):
             np.testing.assert_allclose(x[b, column], spla.spsolve(matrix, rhs[b, column]), rtol=1e-10, atol=1e-12)
     assert residual.max() <= 1e-12
+
+
+@pytest.mark.parametrize("differ", [False, True])
+def test_leading_system_matches_scipy(differ):
+    # Reference: scipy.sparse.linalg.spsolve (SuperLU) on the leading system assembled on
+    # its own: the unknowns at band positions below `lead`, the couplings among them and
+    # its own diagonal. With equal diagonals on the first lead - width positions the
+    # kernel shares that elimination with the whole system; with `differ` one lane's
+    # diagonal differs there, so its lane group factors the leading system alone.
+    shape = (4, 3, 2)
+    n, width, lead = 24, 6, 15
+    first, second, values, diagonal, rhs = _grid_systems(shape, 11, seed=5)
+    rng = np.random.default_rng(6)
+    position = np.arange(n)[::-1].copy()
+    lead_diagonal = diagonal.copy()
+    tail = position >= lead - width
+    lead_diagonal[:, tail] += rng.uniform(-0.05, 1.0, (11, int(tail.sum())))
+    if differ:
+        lead_diagonal[9, np.flatnonzero(position == 0)] += 0.5
+    lead_rhs = rng.standard_normal(rhs.shape)
+    x, residual, x_lead, residual_lead = solve_batch_with_lead(first, second, position, values, diagonal, rhs,
+                                                               width, lead, lead_diagonal, lead_rhs)
+    inside = np.flatnonzero(position < lead)
+    for b in range(11):
+        a = sp.coo_matrix((-values[b], (first, second)), shape=(n, n))
+        matrix = (a + a.T + sp.diags(diagonal[b])).tocsc()
+        leading = (a + a.T + sp.diags(lead_diagonal[b])).tocsc()[inside][:, inside]
+        for column in range(2):
+            np.testing.assert_allclose(x[b, column], spla.spsolve(matrix, rhs[b, column]), rtol=1e-10, atol=1e-12)
+            np.testing.assert_allclose(x_lead[b, column, inside], spla.spsolve(leading, lead_rhs[b, column, inside]),
+                                       rtol=1e-10, atol=1e-12)
+    assert np.all(x_lead[:, :, position >= lead] == 0)
+    assert max(residual.max(), residual_lead.max()) <= 1e-12
 
 
 def test_batched_solve_refuses_an_indefinite_system():

@@ -20,7 +20,8 @@ from .local import BATCH_BYTES, BOUNDARY_CONDITIONS, flow_tensors
 from .partition import AXES, Partition, make_partition
 from .static import STATIC_METHODS, block_length, cardwell_parsons, divide_or_zero, static_average
 from .tpfa import cell_geometry, half_transmissibility, harmonic_pair
-from .transmissibility import flow_transmissibility, multipliers as face_multipliers, unit_system
+from .transmissibility import (flow_transmissibility, multipliers as face_multipliers, sealed_and_face_flow,
+                               unit_system)
 from .version import tool_version
 
 log = logging.getLogger(__name__)
@@ -163,9 +164,13 @@ def block_variables(cells: FineArrays, partition: Partition, blocks: tuple[slice
     weight = core.bulk_volume * core.active
     effective = np.zeros(shape + (3, 3))
     out = {}
+    solves = dict(border=recipe.border, progress=progress, budget=budget, only=only)
+    together = recipe.flow and recipe.multipliers and recipe.bc == "sealed"
+    if together:  # the sealed solves share their elimination with the face problems
+        flow, faces, residuals = sealed_and_face_flow(cells, partition, units=recipe.units, **solves)
+    elif recipe.flow:
+        flow = flow_tensors(cells, partition, bc=recipe.bc, **solves)
     if recipe.flow:
-        flow = flow_tensors(cells, partition, bc=recipe.bc, border=recipe.border, progress=progress,
-                            budget=budget, only=only)
         effective[:] = flow.tensor[blocks]
         out["solve_residual"] = flow.residual[blocks]
         if recipe.bc == "linear":
@@ -195,8 +200,8 @@ def block_variables(cells: FineArrays, partition: Partition, blocks: tuple[slice
         # T scales with length (A / L): mD*m -> mD*ft multiplies by the metres-to-feet factor.
         out[f"half_{name}"] = constant * to_length * half_transmissibility(k[..., axis, axis], volume, lengths[axis])
     if recipe.multipliers:
-        faces, residuals = flow_transmissibility(cells, partition, border=recipe.border, units=recipe.units,
-                                                 progress=progress, budget=budget, only=only)
+        if not together:
+            faces, residuals = flow_transmissibility(cells, partition, units=recipe.units, **solves)
         residual = out.get("solve_residual", np.zeros(shape))
         for axis, name in enumerate(AXES):
             owned = list(blocks)

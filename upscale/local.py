@@ -37,12 +37,13 @@ from scipy.sparse.csgraph import connected_components
 from .errors import InputError
 from .field import FineArrays
 from .partition import BlockGroup, Partition, block_groups
-from .solvers import first_call, solve_batch
+from .solvers import first_call, solve_batch, solve_batch_with_lead
 from .tpfa import harmonic_pair
 
 log = logging.getLogger(__name__)
 BOUNDARY_CONDITIONS = ("sealed", "periodic", "linear")
 BATCH_BYTES = 256 * 2 ** 20
+GRADIENT_FLOOR = 1e-12  # of the imposed mean gradient (unit drop over the domain): below it, none
 
 
 @dataclass(frozen=True)
@@ -88,13 +89,14 @@ def _take(a: np.ndarray, axis: int, index: int | slice) -> np.ndarray:
     return a[tuple(sl)]
 
 
-def band_order(shape: tuple[int, int, int], periodic: bool) -> tuple[np.ndarray, int]:
+def band_order(shape: tuple[int, int, int], periodic: bool, slowest: int | None = None) -> tuple[np.ndarray, int]:
     """Band position of each cell (natural C order) and the half bandwidth.
 
-    The largest axis varies slowest. For periodic problems each axis is visited in the
+    The largest axis varies slowest (``slowest`` first among equally long ones, which
+    leaves the bandwidth unchanged). For periodic problems each axis is visited in the
     order 0, n-1, 1, n-2, ... so that wrap-around neighbours stay close.
     """
-    order = sorted(range(3), key=lambda a: shape[a], reverse=True)
+    order = sorted(range(3), key=lambda a: (shape[a], a == slowest), reverse=True)
     positions = []
     for a in range(3):
         n = shape[a]
@@ -402,27 +404,56 @@ class LocalProblem:
     """Transmissibilities, connectivity and band ordering of a batch of local domains,
     shared by the systems (boundary conditions) solved on it."""
 
-    def __init__(self, domain: LocalDomain, periodic: bool):
+    def __init__(self, domain: LocalDomain, periodic: bool, slowest: int | None = None):
         self.domain = domain
         nb, shape = domain.count, domain.shape
         self.n = int(np.prod(shape))
         self.couplings, (self.first, self.second, self.values), self.coupling_sum = _couplings(domain, periodic)
         self.labels, self.component_start = _components(self.first, self.second, self.values, nb, self.n)
-        self.pos, self.width = band_order(shape, periodic)
+        self.pos, self.width = band_order(shape, periodic, slowest)
 
-    def solve(self, boundary: Boundary, bc: str, cases: tuple[int, ...]) -> Solved:
-        """Solve one system for the unit-gradient cases along the given axes."""
-        domain, pos, n = self.domain, self.pos, self.n
+    @classmethod
+    def leading(cls, whole: "LocalProblem", axis: int, stop: int) -> "LocalProblem":
+        """The problem on the first ``stop`` cells along ``axis`` of ``whole``'s domains (no
+        periodic axes), cut from ``whole``'s transmissibilities instead of recomputed."""
+        self = cls.__new__(cls)
+        domain = leading_part(whole.domain, axis, stop)
+        domain.volume = _take(whole.domain.volume, axis, slice(0, stop))
+        self.domain, nb, shape = domain, domain.count, domain.shape
+        self.n = int(np.prod(shape))
+        inner = [_take(t, axis, slice(0, stop - int(a == axis))) for a, t in enumerate(whole.couplings.inner)]
+        self.couplings = Couplings([_take(h, axis, slice(0, stop)) for h in whole.couplings.half], inner, [None] * 3)
+        self.coupling_sum = _take(whole.coupling_sum, axis, slice(0, stop)).copy()
+        if stop < whole.domain.shape[axis]:  # the couplings across the cut are not the part's
+            _take(self.coupling_sum, axis, stop - 1)[...] -= _take(whole.couplings.inner[axis], axis, stop - 1)
+        self.first, self.second, _, _ = _layout(shape, False)
+        self.values = np.concatenate([t.reshape(nb, -1) for t in inner], axis=1)
+        self.labels, self.component_start = _components(self.first, self.second, self.values, nb, self.n)
+        self.pos, self.width = band_order(shape, False)
+        return self
+
+    def system(self, boundary: Boundary, bc: str, cases: tuple[int, ...]):
+        """Diagonal (nb, n), Dirichlet-touch and connected masks, and right-hand sides
+        (nb, len(cases), n) of one system for the unit-gradient cases along the given axes."""
+        domain, n = self.domain, self.n
         nb = domain.count
         diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.labels,
                                             self.component_start)
         rhs = np.empty((nb, len(cases), n))
         for column, case in enumerate(cases):
             rhs[:, column] = _right_hand_side(domain, self.couplings, boundary, bc, case).reshape(nb, n)
-        solution, residual = solve_batch(self.first, self.second, pos, self.values, diag.reshape(nb, n), rhs,
-                                         self.width)
-        pressures = [solution[:, column].reshape((nb,) + domain.shape) for column in range(len(cases))]
-        return Solved(pressures, touch, connected, residual)
+        return diag.reshape(nb, n), touch, connected, rhs
+
+    def solve(self, boundary: Boundary, bc: str, cases: tuple[int, ...]) -> Solved:
+        """Solve one system for the unit-gradient cases along the given axes."""
+        diag, touch, connected, rhs = self.system(boundary, bc, cases)
+        solution, residual = solve_batch(self.first, self.second, self.pos, self.values, diag, rhs, self.width)
+        return Solved(self.shaped(solution), touch, connected, residual)
+
+    def shaped(self, solution: np.ndarray) -> list[np.ndarray]:
+        """Per case, the pressures (nb, sx, sy, sz) of a solution (nb, cases, n)."""
+        return [solution[:, column].reshape((self.domain.count,) + self.domain.shape)
+                for column in range(solution.shape[1])]
 
     def inflow(self, p: np.ndarray, d: int) -> np.ndarray:
         """Rate entering through the d- face at unit boundary pressure (mD*m per domain)."""
@@ -439,15 +470,16 @@ def sealed_boundary(d: int) -> Boundary:
     return Boundary(tuple("dirichlet" if a == d else "noflow" for a in range(3)))
 
 
-def solve_domains(domain: LocalDomain, bc: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Effective tensors (nb, 3, 3) in mD, residuals (nb,) and asymmetry (nb,) for a batch."""
+def solve_domains(domain: LocalDomain, bc: str, directions=(0, 1, 2)) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Effective tensors (nb, 3, 3) in mD, residuals (nb,) and asymmetry (nb,) for a batch;
+    for ``sealed``, only the diagonal entries of ``directions`` are solved (others 0)."""
     if bc not in BOUNDARY_CONDITIONS:
         raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
     nb = domain.count
     periodic = bc == "periodic"
     problem = LocalProblem(domain, periodic)
     if bc == "sealed":
-        systems = [(sealed_boundary(d), (d,)) for d in range(3)]
+        systems = [(sealed_boundary(d), (d,)) for d in directions]
     else:
         systems = [(Boundary(("periodic" if periodic else "dirichlet",) * 3), (0, 1, 2))]
     velocity = np.zeros((nb, 3, 3))
@@ -456,19 +488,67 @@ def solve_domains(domain: LocalDomain, bc: str) -> tuple[np.ndarray, np.ndarray,
     for boundary, cases in systems:
         solved = problem.solve(boundary, bc, cases)
         residual = np.maximum(residual, solved.residual)
-        for case, p in zip(cases, solved.pressures):
-            if bc == "sealed":
-                through = problem.connected_through(solved.touch, case)
-                if not domain.bordered:
-                    _sealed_unbordered(domain, problem.inflow(p, case), through, case, velocity, gradient)
-                    continue
-            fluxes, pressures = _face_values(domain, problem.couplings, p, boundary, bc, case,
-                                             with_pressure=domain.bordered)
-            velocity[:, :, case], gradient[:, :, case] = _target_averages(domain, fluxes, pressures,
-                                                                          solved.connected)
-            if bc == "sealed":
-                velocity[~through, :, case] = 0.0
+        measure(problem, solved, boundary, bc, cases, velocity, gradient)
     return _tensor(domain, bc, velocity, gradient, residual)
+
+
+def measure(problem: LocalProblem, solved: Solved, boundary: Boundary, bc: str, cases: tuple[int, ...],
+            velocity: np.ndarray, gradient: np.ndarray) -> None:
+    """Fill the columns ``cases`` of the target-averaged velocity and pressure gradient
+    (nb, 3, 3) from the solved pressures (for sealed without border: the inflow form)."""
+    domain = problem.domain
+    for case, p in zip(cases, solved.pressures):
+        if bc == "sealed":
+            through = problem.connected_through(solved.touch, case)
+            if not domain.bordered:
+                _sealed_unbordered(domain, problem.inflow(p, case), through, case, velocity, gradient)
+                continue
+        fluxes, pressures = _face_values(domain, problem.couplings, p, boundary, bc, case,
+                                         with_pressure=domain.bordered)
+        velocity[:, :, case], gradient[:, :, case] = _target_averages(domain, fluxes, pressures, solved.connected)
+        if bc == "sealed":
+            velocity[~through, :, case] = 0.0
+
+
+def sealed_permeability(problem: LocalProblem, solved: Solved, axis: int) -> np.ndarray:
+    """Sealed effective permeability along ``axis`` (nb,) in mD from that axis's solve."""
+    nb = problem.domain.count
+    velocity, gradient = np.zeros((nb, 3, 3)), np.zeros((nb, 3, 3))
+    measure(problem, solved, sealed_boundary(axis), "sealed", (axis,), velocity, gradient)
+    return _tensor(problem.domain, "sealed", velocity, gradient, solved.residual)[0][:, axis, axis]
+
+
+def leading_part(domain: LocalDomain, axis: int, stop: int) -> LocalDomain:
+    """The first ``stop`` cells along ``axis`` of every domain of a batch (views), same target."""
+    def cut(a):
+        return _take(a, axis, slice(0, stop))
+
+    return LocalDomain(k=tuple(cut(k) for k in domain.k), lengths=tuple(cut(length) for length in domain.lengths),
+                       target=domain.target)
+
+
+def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int) -> tuple[Solved, Solved] | None:
+    """Sealed solves along ``axis`` of a batch and of its leading part ``lead`` (a
+    :func:`leading_part` of the same domains) in one kernel call, sharing the elimination
+    of the cells they have in common (:func:`upscale.solvers.solve_assembled`). None when
+    the leading part does not come first in the batch's band order."""
+    shape, nb = problem.domain.shape, problem.domain.count
+    inside = np.arange(problem.n).reshape(shape)
+    inside = _take(inside[None], axis, slice(0, lead.domain.shape[axis]))[0].ravel()
+    if problem.pos[inside].max() != lead.n - 1:
+        return None
+    boundary = sealed_boundary(axis)
+    diag, touch, connected, rhs = problem.system(boundary, "sealed", (axis,))
+    lead_diag, lead_touch, lead_connected, lead_rhs = lead.system(boundary, "sealed", (axis,))
+    embedded_diag = np.zeros((nb, problem.n))
+    embedded_diag[:, inside] = lead_diag
+    embedded_rhs = np.zeros((nb, 1, problem.n))
+    embedded_rhs[:, :, inside] = lead_rhs
+    x, residual, x_lead, residual_lead = solve_batch_with_lead(
+        problem.first, problem.second, problem.pos, problem.values, diag, rhs, problem.width, lead.n, embedded_diag,
+        embedded_rhs)
+    return (Solved(problem.shaped(x), touch, connected, residual),
+            Solved(lead.shaped(x_lead[:, :, inside]), lead_touch, lead_connected, residual_lead))
 
 
 def _right_hand_side(domain, couplings: Couplings, boundary: Boundary, bc: str, case: int) -> np.ndarray:
@@ -520,7 +600,9 @@ def _tensor(domain, bc, velocity, gradient, residual):
         u = np.einsum("bii->bi", velocity)
         k = np.zeros((nb, 3, 3))
         diagonal = np.zeros((nb, 3))
-        np.divide(-u, g, out=diagonal, where=g < 0)
+        # A target block that no flow crosses (closed inside a bordered domain) has a
+        # gradient at rounding level, of either sign: it counts as none, k = 0.
+        np.divide(-u, g, out=diagonal, where=g < -GRADIENT_FLOOR / _block_lengths(domain))
         k[:, np.arange(3), np.arange(3)] = np.maximum(diagonal, 0.0)
         return k, residual, np.zeros(nb)
     if not domain.bordered:

@@ -38,13 +38,14 @@ def first_call(kernel):
 
 
 @njit(cache=True, fastmath=True)
-def _factor(c, ok):  # pragma: no cover - compiled
-    """Cholesky of LANES banded systems at once; c (n, w + 1, LANES); ok (LANES,) cleared
-    where a pivot is not positive (that lane's pivot is then set to 1 to go on)."""
+def _factor(c, ok, start, stop):  # pragma: no cover - compiled
+    """Cholesky steps for rows start..stop-1 of LANES banded systems at once (rows before
+    ``start`` already eliminated); c (n, w + 1, LANES); ok (LANES,) cleared where a pivot
+    is not positive (that lane's pivot is then set to 1 to go on)."""
     n, w1, lanes = c.shape
     w = w1 - 1
     inverse = np.empty(lanes)
-    for j in range(n):
+    for j in range(start, stop):
         for l in range(lanes):
             pivot = c[j, 0, l]
             if not pivot > 0.0:
@@ -64,31 +65,54 @@ def _factor(c, ok):  # pragma: no cover - compiled
 
 
 @njit(cache=True, fastmath=True)
-def _substitute(c, x):  # pragma: no cover - compiled
-    """Overwrite x (n, LANES) with the solutions of L L^T y = x, lane by lane."""
-    n, w1, lanes = c.shape
-    w = w1 - 1
+def _assemble(c, d, band_first, band_second, v):  # pragma: no cover - compiled
+    """Lower band c (n, w + 1, LANES) of the systems with diagonal d (n, LANES) and
+    couplings -v (E, LANES) between band positions band_first[e], band_second[e];
+    couplings reaching past the band's n rows are left out (a leading system)."""
+    n = c.shape[0]
     for j in range(n):
+        for l in range(c.shape[2]):
+            c[j, 0, l] = d[j, l]
+    for e in range(band_first.shape[0]):
+        p = band_first[e]
+        q = band_second[e]
+        if p == q or p >= n or q >= n:
+            continue
+        lo = min(p, q)
+        for l in range(c.shape[2]):
+            c[lo, max(p, q) - lo, l] -= v[e, l]
+
+
+@njit(cache=True, fastmath=True)
+def _substitute(head, tail, split, x):  # pragma: no cover - compiled
+    """Overwrite x (n, LANES) with the solutions of L L^T y = x, lane by lane; the factor's
+    rows below ``split`` are those of ``head``, the others those of ``tail`` (from its row 0)."""
+    n, lanes = x.shape
+    w = head.shape[1] - 1
+    for j in range(n):
+        c = head[j] if j < split else tail[j - split]
         for l in range(lanes):
-            x[j, l] /= c[j, 0, l]
+            x[j, l] /= c[0, l]
         for t in range(1, min(w, n - 1 - j) + 1):
             for l in range(lanes):
-                x[j + t, l] -= c[j, t, l] * x[j, l]
+                x[j + t, l] -= c[t, l] * x[j, l]
     s = np.empty(lanes)
     for j in range(n - 1, -1, -1):
+        c = head[j] if j < split else tail[j - split]
         for l in range(lanes):
             s[l] = x[j, l]
         for t in range(1, min(w, n - 1 - j) + 1):
             for l in range(lanes):
-                s[l] -= c[j, t, l] * x[j + t, l]
+                s[l] -= c[t, l] * x[j + t, l]
         for l in range(lanes):
-            x[j, l] = s[l] / c[j, 0, l]
+            x[j, l] = s[l] / c[0, l]
 
 
 @njit(cache=True, fastmath=True)
 def _residual(diagonal, first, second, values, x, b, r):  # pragma: no cover - compiled
     """r = b - A x for LANES systems given by their coupling list: diagonal (n, LANES),
-    couplings ``-values`` (E, LANES) between unknowns first[e] and second[e]; x, b, r (n, LANES)."""
+    couplings ``-values`` (E, LANES) between unknowns first[e] and second[e]; x, b, r (n, LANES).
+    Couplings reaching unknowns n and beyond are left out (a leading system)."""
     n, lanes = x.shape
     for j in range(n):
         for l in range(lanes):
@@ -96,28 +120,59 @@ def _residual(diagonal, first, second, values, x, b, r):  # pragma: no cover - c
     for e in range(first.shape[0]):
         p = first[e]
         q = second[e]
-        if p == q:
+        if p == q or p >= n or q >= n:
             continue
         for l in range(lanes):
             r[p, l] += values[e, l] * x[q, l]
             r[q, l] += values[e, l] * x[p, l]
 
 
+@njit(cache=True, fastmath=True)
+def _solve_refined(head, tail, split, d, band_first, band_second, v, b, y, r, refinements,
+                   tolerance):  # pragma: no cover - compiled
+    """Overwrite y (n, LANES) with the solution of the factored systems (factor rows as in
+    :func:`_substitute`) for right-hand sides b, refined until the relative residual is at
+    most ``tolerance``; returns it (LANES,)."""
+    y[:] = b
+    _substitute(head, tail, split, y)
+    scale = np.sqrt(np.sum(b * b, axis=0))
+    for attempt in range(refinements + 1):
+        _residual(d, band_first, band_second, v, y, b, r)
+        error = np.sqrt(np.sum(r * r, axis=0)) / np.where(scale > 0.0, scale, 1.0)
+        if error.max() <= tolerance or attempt == refinements:
+            break
+        _substitute(head, tail, split, r)
+        y += r
+    return error
+
+
 @njit(parallel=True, cache=True)
-def solve_assembled(first, second, position, values, diagonal, rhs, width, refinements, tolerance):  # pragma: no cover
+def solve_assembled(first, second, position, values, diagonal, rhs, width, refinements, tolerance,
+                    lead, lead_diagonal, lead_rhs):  # pragma: no cover - compiled
     """Assemble, factor and solve every system of a batch, LANES systems at a time.
 
     first, second (E,) int: coupled unknowns; position (n,) int: band position of each
     unknown; values (nb, E): coupling strengths (the matrix holds -value off the
     diagonal); diagonal (nb, n); rhs (nb, m, n); unknowns in the callers' numbering. A
     last, incomplete lane group repeats the batch's last system in its spare lanes.
-    Returns (x (nb, m, n), relative residual (nb,), positive definite flag (nb,)).
+
+    With ``lead`` > 0 a second, leading system is solved per domain: the unknowns at
+    band positions below ``lead``, the same couplings among them, its own diagonal
+    ``lead_diagonal`` (nb, n; read where the position is below ``lead``) and right-hand
+    sides ``lead_rhs`` (nb, m, n). Where both diagonals agree on the first lead - width
+    positions of every lane of a group, the elimination of those rows is done once for
+    both systems; otherwise the leading system is factored on its own.
+    Returns (x, relative residual (nb,), positive definite flag (nb,), leading x (nb, m, n;
+    0 off the leading unknowns), its relative residual (nb,)).
     """
     nb, m, n = rhs.shape
     edges = first.shape[0]
     x = np.zeros_like(rhs)
+    x_lead = np.zeros((nb if lead > 0 else 0, m, n))
     relative = np.zeros(nb)
+    relative_lead = np.zeros(nb)
     ok = np.ones(nb, dtype=np.bool_)
+    split = max(lead - width, 0)
     band_first = np.empty(edges, dtype=np.int64)
     band_second = np.empty(edges, dtype=np.int64)
     for e in range(edges):
@@ -129,49 +184,87 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
         for l in range(LANES):
             source[l] = min(base + l, nb - 1)
         d = np.empty((n, LANES))
+        d_lead = np.empty((lead, LANES))
         v = np.empty((edges, LANES))
-        c = np.zeros((n, width + 1, LANES))
         for i in range(n):
             j = position[i]
             for l in range(LANES):
                 d[j, l] = diagonal[source[l], i]
-                c[j, 0, l] = d[j, l]
+                if j < lead:
+                    d_lead[j, l] = lead_diagonal[source[l], i]
         for e in range(edges):
             for l in range(LANES):
                 v[e, l] = values[source[l], e]
-            p = band_first[e]
-            q = band_second[e]
-            if p == q:
-                continue
-            lo = min(p, q)
-            for l in range(LANES):
-                c[lo, max(p, q) - lo, l] -= v[e, l]
+        c = np.zeros((n, width + 1, LANES))
+        _assemble(c, d, band_first, band_second, v)
         lane_ok = np.ones(LANES, dtype=np.bool_)
-        _factor(c, lane_ok)
+        shared = lead > 0
+        for j in range(split):
+            for l in range(LANES):
+                if d_lead[j, l] != d[j, l]:
+                    shared = False
+        if shared:  # leading factor: c's rows below split, then its own last rows
+            _factor(c, lane_ok, 0, split)
+            lead_head, lead_split = c, split
+            lead_tail = c[split:lead].copy()
+            for j in range(split, lead):
+                for l in range(LANES):
+                    lead_tail[j - split, 0, l] += d_lead[j, l] - d[j, l]
+            _factor(lead_tail, lane_ok, 0, lead - split)
+            _factor(c, lane_ok, split, n)
+        else:
+            lead_head, lead_split = np.zeros((lead, width + 1, LANES)), lead
+            lead_tail = lead_head[lead:]
+            if lead > 0:
+                _assemble(lead_head, d_lead, band_first, band_second, v)
+                _factor(lead_head, lane_ok, 0, lead)
+            _factor(c, lane_ok, 0, n)
         b = np.empty((n, LANES))
         y = np.empty((n, LANES))
         r = np.empty((n, LANES))
+        b_lead = np.empty((lead, LANES))
+        y_lead = np.empty((lead, LANES))
+        r_lead = np.empty((lead, LANES))
         for k in range(m):
             for i in range(n):
                 j = position[i]
                 for l in range(LANES):
                     b[j, l] = rhs[source[l], k, i]
-                    y[j, l] = b[j, l]
-            _substitute(c, y)
-            scale = np.sqrt(np.sum(b * b, axis=0))
-            for attempt in range(refinements + 1):
-                _residual(d, band_first, band_second, v, y, b, r)
-                error = np.sqrt(np.sum(r * r, axis=0)) / np.where(scale > 0.0, scale, 1.0)
-                if error.max() <= tolerance or attempt == refinements:
-                    break
-                _substitute(c, r)
-                y += r
+                    if j < lead:
+                        b_lead[j, l] = lead_rhs[source[l], k, i]
+            error = _solve_refined(c, c[n:], n, d, band_first, band_second, v, b, y, r, refinements, tolerance)
+            error_lead = np.zeros(LANES)
+            if lead > 0:
+                error_lead = _solve_refined(lead_head, lead_tail, lead_split, d_lead, band_first, band_second, v,
+                                            b_lead, y_lead, r_lead, refinements, tolerance)
             for l in range(min(LANES, nb - base)):
                 relative[base + l] = max(relative[base + l], error[l])
+                relative_lead[base + l] = max(relative_lead[base + l], error_lead[l])
                 ok[base + l] = lane_ok[l]
                 for i in range(n):
-                    x[base + l, k, i] = y[position[i], l]
-    return x, relative, ok
+                    j = position[i]
+                    x[base + l, k, i] = y[j, l]
+                    if j < lead:
+                        x_lead[base + l, k, i] = y_lead[j, l]
+    return x, relative, ok, x_lead, relative_lead
+
+
+def _exact(array, dtype):
+    return np.ascontiguousarray(array, dtype=dtype)
+
+
+def _run(first, second, position, values, diagonal, rhs, width, refinements, tolerance, lead, lead_diagonal,
+         lead_rhs):
+    """Call the kernel with exact types; raise ``FloatingPointError`` if a system is not
+    positive definite."""
+    with first_call(solve_assembled):
+        x, relative, ok, x_lead, relative_lead = solve_assembled(
+            _exact(first, np.int64), _exact(second, np.int64), _exact(position, np.int64), _exact(values, float),
+            _exact(diagonal, float), _exact(rhs, float), int(width), int(refinements), float(tolerance),
+            int(lead), _exact(lead_diagonal, float), _exact(lead_rhs, float))
+    if not ok.all():
+        raise FloatingPointError(f"{int((~ok).sum())} local system(s) not positive definite")
+    return x, relative, x_lead, relative_lead
 
 
 def solve_batch(first: np.ndarray, second: np.ndarray, position: np.ndarray, values: np.ndarray,
@@ -179,14 +272,17 @@ def solve_batch(first: np.ndarray, second: np.ndarray, position: np.ndarray, val
                 tolerance: float = 1e-12):
     """Checked wrapper of :func:`solve_assembled`; raises ``FloatingPointError`` if a
     system is not positive definite. Returns (x (nb, m, n), relative residual (nb,))."""
-
-    def exact(array, dtype):
-        return np.ascontiguousarray(array, dtype=dtype)
-
-    with first_call(solve_assembled):
-        x, relative, ok = solve_assembled(exact(first, np.int64), exact(second, np.int64),
-                                          exact(position, np.int64), exact(values, float), exact(diagonal, float),
-                                          exact(rhs, float), int(width), int(refinements), float(tolerance))
-    if not ok.all():
-        raise FloatingPointError(f"{int((~ok).sum())} local system(s) not positive definite")
+    x, relative, _, _ = _run(first, second, position, values, diagonal, rhs, width, refinements, tolerance,
+                             0, np.zeros((0, 0)), np.zeros((0, 0, 0)))
     return x, relative
+
+
+def solve_batch_with_lead(first: np.ndarray, second: np.ndarray, position: np.ndarray, values: np.ndarray,
+                          diagonal: np.ndarray, rhs: np.ndarray, width: int, lead: int, lead_diagonal: np.ndarray,
+                          lead_rhs: np.ndarray, refinements: int = 2, tolerance: float = 1e-12):
+    """:func:`solve_batch` plus a leading system on the first ``lead`` band positions
+    (see :func:`solve_assembled`). Returns (x, relative residual, leading x, its residual)."""
+    if not 0 < lead <= diagonal.shape[1]:
+        raise ValueError(f"leading system size {lead} is not between 1 and {diagonal.shape[1]}")
+    return _run(first, second, position, values, diagonal, rhs, width, refinements, tolerance, lead,
+                lead_diagonal, lead_rhs)

@@ -15,7 +15,8 @@ import xarray as xr
 
 from .errors import InputError
 from .field import FineArrays
-from .local import BATCH_BYTES, LocalProblem, local_domains, sealed_boundary
+from .local import (BATCH_BYTES, FlowResult, LocalProblem, local_domains, sealed_boundary,
+                    sealed_permeability, solve_domains, solve_with_leading)
 from .partition import AXES, Partition
 from .units import TRANSMISSIBILITY_UNITS
 
@@ -56,8 +57,60 @@ def flow_transmissibility(cells: FineArrays, partition: Partition, border: int =
     axis (the others stay 0). Returns (transmissibilities per axis in ``units``, residuals
     per axis).
     """
+    faces, residuals, _ = _face_problems(cells, partition, border, units, progress, budget, only, sealed=False)
+    return faces, residuals
+
+
+def sealed_and_face_flow(cells: FineArrays, partition: Partition, border: int = 0, units: str = "metric",
+                         progress=None, budget: int = BATCH_BYTES, only=(None, None, None)
+                         ) -> tuple[FlowResult, list[np.ndarray], list[np.ndarray]]:
+    """``flow_tensors(..., 'sealed')`` and :func:`flow_transmissibility` in one pass.
+
+    Along each axis, block I's sealed domain is the leading part of the face problem
+    between I and I+1 (the same cells up to I's far end, or its border ring), so both
+    systems are solved in one kernel call that eliminates their common cells once
+    (:func:`upscale.local.solve_with_leading`); the same numbers as the two separate
+    calls to rounding. Blocks without a face after them, and face problems whose band
+    order does not start with the block, get their own sealed solve.
+    Returns (sealed FlowResult, face transmissibilities per axis, face residuals per axis).
+    """
+    faces, residuals, (diagonal, residual, done) = _face_problems(cells, partition, border, units, progress,
+                                                                  budget, only, sealed=True)
+    for axis in range(3):
+        remaining = ~done[axis]
+        if any(o is not None for o in only):
+            wanted = np.zeros(partition.shape, dtype=bool)
+            wanted[np.ix_(*(np.arange(n) if o is None else np.asarray(o) for n, o in zip(partition.shape, only)))] = True
+            remaining &= wanted
+        if remaining.any():
+            hull = tuple(np.flatnonzero(remaining.any(axis=tuple(b for b in range(3) if b != a))) for a in range(3))
+            k, r = np.zeros(partition.shape), np.zeros(partition.shape)
+            for batch, domain in local_domains(cells, partition, border, budget=budget, only=hull):
+                tensor, batch_residual, _ = solve_domains(domain, "sealed", directions=(axis,))
+                batch.scatter(k, tensor[:, axis, axis])
+                batch.scatter(r, batch_residual)
+            diagonal[axis] = np.where(remaining, k, diagonal[axis])
+            residual = np.where(remaining, np.maximum(residual, r), residual)
+        if progress is not None:
+            progress(int(np.prod(partition.shape)) // 3 + int(axis < int(np.prod(partition.shape)) % 3))
+    tensor = np.zeros(partition.shape + (3, 3))
+    for axis in range(3):
+        tensor[..., axis, axis] = diagonal[axis]
+    tensor[partition.block_sum(cells.active) == 0] = 0.0
+    flow = FlowResult(tensor=tensor, residual=residual, asymmetry=np.zeros(partition.shape))
+    return flow, faces, residuals
+
+
+def _face_problems(cells: FineArrays, partition: Partition, border: int, units: str, progress, budget: int, only,
+                   sealed: bool):
+    """Face transmissibilities and residuals per axis; with ``sealed``, also each block's
+    sealed permeability per axis from the face problems' leading parts, the residual of
+    those solves and per axis the mask of blocks done (else None)."""
     _, constant, to_length = unit_system(units)
     faces, residuals = [], []
+    diagonal = [np.zeros(partition.shape) for _ in range(3)]
+    sealed_residual = np.zeros(partition.shape)
+    done = [np.zeros(partition.shape, dtype=bool) for _ in range(3)]
     for axis in range(3):
         shape = list(partition.shape)
         shape[axis] -= 1
@@ -69,8 +122,19 @@ def flow_transmissibility(cells: FineArrays, partition: Partition, border: int =
             if owners[axis] is not None:
                 owners[axis] = np.asarray(owners[axis])[np.asarray(owners[axis]) < shape[axis]]
             for batch, domain in local_domains(cells, partition, border, extend, budget, tuple(owners)):
-                problem = LocalProblem(domain, periodic=False)
-                solved = problem.solve(sealed_boundary(axis), "sealed", (axis,))
+                problem = LocalProblem(domain, periodic=False, slowest=axis)
+                pair = None
+                if sealed:
+                    stop = min(domain.target[axis].stop + border, domain.shape[axis])
+                    lead = LocalProblem.leading(problem, axis, stop)
+                    pair = solve_with_leading(problem, lead, axis)
+                if pair is None:
+                    solved = problem.solve(sealed_boundary(axis), "sealed", (axis,))
+                else:
+                    solved, lead_solved = pair
+                    batch.scatter(diagonal[axis], sealed_permeability(lead, lead_solved, axis))
+                    batch.scatter(sealed_residual, np.maximum(lead_solved.residual, _gather(batch, sealed_residual)))
+                    batch.scatter(done[axis], np.ones(batch.count, dtype=bool))
                 p = solved.pressures[0]
                 rate = problem.inflow(p, axis)
                 drop = _pressure_drop(domain, p, solved.connected, batch.target, _neighbour_region(batch, axis))
@@ -82,7 +146,12 @@ def flow_transmissibility(cells: FineArrays, partition: Partition, border: int =
                     progress(batch.count)
         faces.append(t)
         residuals.append(residual)
-    return faces, residuals
+    return faces, residuals, ((diagonal, sealed_residual, done) if sealed else None)
+
+
+def _gather(batch, coarse: np.ndarray) -> np.ndarray:
+    """Per-block values (count,) of a coarse (NX, NY, NZ) array for a batch (inverse of scatter)."""
+    return coarse[np.ix_(*batch.blocks)].reshape(-1)
 
 
 def _neighbour_region(batch, axis: int) -> tuple[slice, ...]:
