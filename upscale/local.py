@@ -602,7 +602,8 @@ def _tensor(domain, bc, velocity, gradient, residual):
         diagonal = np.zeros((nb, 3))
         # A target block that no flow crosses (closed inside a bordered domain) has a
         # gradient at rounding level, of either sign: it counts as none, k = 0.
-        np.divide(-u, g, out=diagonal, where=g < -GRADIENT_FLOOR / _block_lengths(domain))
+        length = _block_lengths(domain)
+        np.divide(-u, g, out=diagonal, where=g < -GRADIENT_FLOOR / np.where(length > 0, length, np.inf))
         k[:, np.arange(3), np.arange(3)] = np.maximum(diagonal, 0.0)
         return k, residual, np.zeros(nb)
     if not domain.bordered:
