@@ -211,6 +211,8 @@ CASES = [
     # --- units
     Case("unknown-length-units", units("dx", "furlong"), ("'dx'", "unknown units 'furlong'")),
     Case("unknown-permeability-units", units("kx", "cm/s"), ("'kx'", "unknown units 'cm/s'")),
+    # found by the header fuzz test: a line break in the attribute must not split the message
+    Case("line-break-in-units", units("dx", "0\n0"), ("'dx'", "unknown units '0\\n0'")),
     Case("decoding-overflow", raw_attributes("kx", scale_factor=1e308, add_offset=1e308),
          ("'kx'", "infinite", "(x=0, y=0, z=0)")),
     Case("time-units-on-dx", units("dx", "days since 2000-01-01"), ("'dx'", "unknown units 'days since")),

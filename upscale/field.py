@@ -302,7 +302,7 @@ def _unit_scale(ds: xr.Dataset, name: str, where: str, table: dict, default: str
     units = str(ds[name].attrs.get("units", default)).strip()
     scale = table.get(units.lower())
     if scale is None:
-        raise InputError(f"{where}: variable '{name}' has unknown units '{units}'; use {wanted}")
+        raise InputError(f"{where}: variable '{name}' has unknown units {units!r}; use {wanted}")
     return scale
 
 
