@@ -173,6 +173,13 @@ def test_well_drains_monotonically():
     assert check["fine"]["drained_fraction_end"] > 0.7
 
 
+def test_malformed_fine_shape_attribute_is_refused_by_name():
+    coarse = coarsen(validate(heterogeneous(seed=5)), ratio=(2, 2, 1), method="arithmetic")
+    coarse.attrs["fine_shape"] = "8 x 7"
+    with pytest.raises(InputError, match="'fine_shape' is '8 x 7'"):
+        TransientSystem.from_coarse(coarse, drainage="well", column=(4, 3))
+
+
 def test_well_factor_of_a_square_isotropic_cell():
     # Peaceman (1978), SPE Journal 18(3) (from memory): r_e ~ 0.2 dx for a square cell;
     # the anisotropic form (Peaceman 1983) gives 0.28 / sqrt(2) dx = 0.198 dx.

@@ -238,7 +238,12 @@ class TransientSystem:
             description["face"] = face
         else:
             if fine_shape is None and "fine_shape" in ds.attrs:
-                fine_shape = tuple(int(v) for v in str(ds.attrs["fine_shape"]).split())
+                written = str(ds.attrs["fine_shape"])
+                try:
+                    fine_shape = tuple(int(v) for v in written.split())
+                except ValueError:
+                    raise InputError(f"coarse grid: attribute 'fine_shape' is {written!r}, not three whole "
+                                     f"numbers") from None
             starts = fine_starts(ds, fine_shape, required=True)
             if fine_shape is None:
                 fine_shape = tuple(int(ds[f"{n}_stop"].values[-1]) for n in AXES)
