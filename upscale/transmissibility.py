@@ -76,12 +76,11 @@ def sealed_and_face_flow(cells: FineArrays, partition: Partition, border: int = 
     """
     faces, residuals, (diagonal, residual, done) = _face_problems(cells, partition, border, units, progress,
                                                                   budget, only, sealed=True)
+    wanted = np.zeros(partition.shape, dtype=bool)
+    wanted[np.ix_(*(np.arange(n) if o is None else np.asarray(o) for n, o in zip(partition.shape, only)))] = True
+    total = int(wanted.sum())
     for axis in range(3):
-        remaining = ~done[axis]
-        if any(o is not None for o in only):
-            wanted = np.zeros(partition.shape, dtype=bool)
-            wanted[np.ix_(*(np.arange(n) if o is None else np.asarray(o) for n, o in zip(partition.shape, only)))] = True
-            remaining &= wanted
+        remaining = wanted & ~done[axis]
         if remaining.any():
             hull = tuple(np.flatnonzero(remaining.any(axis=tuple(b for b in range(3) if b != a))) for a in range(3))
             k, r = np.zeros(partition.shape), np.zeros(partition.shape)
@@ -90,26 +89,26 @@ def sealed_and_face_flow(cells: FineArrays, partition: Partition, border: int = 
                 batch.scatter(k, tensor[:, axis, axis])
                 batch.scatter(r, batch_residual)
             diagonal[axis] = np.where(remaining, k, diagonal[axis])
-            residual = np.where(remaining, np.maximum(residual, r), residual)
+            residual[axis] = np.where(remaining, r, residual[axis])
         if progress is not None:
-            progress(int(np.prod(partition.shape)) // 3 + int(axis < int(np.prod(partition.shape)) % 3))
+            progress(total // 3 + int(axis < total % 3))
     tensor = np.zeros(partition.shape + (3, 3))
     for axis in range(3):
         tensor[..., axis, axis] = diagonal[axis]
     tensor[partition.block_sum(cells.active) == 0] = 0.0
-    flow = FlowResult(tensor=tensor, residual=residual, asymmetry=np.zeros(partition.shape))
+    flow = FlowResult(tensor=tensor, residual=np.maximum.reduce(residual), asymmetry=np.zeros(partition.shape))
     return flow, faces, residuals
 
 
 def _face_problems(cells: FineArrays, partition: Partition, border: int, units: str, progress, budget: int, only,
                    sealed: bool):
-    """Face transmissibilities and residuals per axis; with ``sealed``, also each block's
-    sealed permeability per axis from the face problems' leading parts, the residual of
-    those solves and per axis the mask of blocks done (else None)."""
+    """Face transmissibilities and residuals per axis; with ``sealed``, also per axis each
+    block's sealed permeability from the face problems' leading parts, the residual of
+    those solves and the mask of blocks done (else None)."""
     _, constant, to_length = unit_system(units)
     faces, residuals = [], []
     diagonal = [np.zeros(partition.shape) for _ in range(3)]
-    sealed_residual = np.zeros(partition.shape)
+    sealed_residual = [np.zeros(partition.shape) for _ in range(3)]
     done = [np.zeros(partition.shape, dtype=bool) for _ in range(3)]
     for axis in range(3):
         shape = list(partition.shape)
@@ -133,7 +132,7 @@ def _face_problems(cells: FineArrays, partition: Partition, border: int, units: 
                 else:
                     solved, lead_solved = pair
                     batch.scatter(diagonal[axis], sealed_permeability(lead, lead_solved, axis))
-                    batch.scatter(sealed_residual, np.maximum(lead_solved.residual, _gather(batch, sealed_residual)))
+                    batch.scatter(sealed_residual[axis], lead_solved.residual)
                     batch.scatter(done[axis], np.ones(batch.count, dtype=bool))
                 p = solved.pressures[0]
                 rate = problem.inflow(p, axis)
@@ -147,11 +146,6 @@ def _face_problems(cells: FineArrays, partition: Partition, border: int, units: 
         faces.append(t)
         residuals.append(residual)
     return faces, residuals, ((diagonal, sealed_residual, done) if sealed else None)
-
-
-def _gather(batch, coarse: np.ndarray) -> np.ndarray:
-    """Per-block values (count,) of a coarse (NX, NY, NZ) array for a batch (inverse of scatter)."""
-    return coarse[np.ix_(*batch.blocks)].reshape(-1)
 
 
 def _neighbour_region(batch, axis: int) -> tuple[slice, ...]:
