@@ -77,6 +77,18 @@ class LocalDomain:
         lx, ly, lz = self.lengths
         return lx * ly * lz
 
+    @cached_property
+    def total_volume(self) -> np.ndarray:
+        """Bulk volume of each domain (nb,), m3."""
+        return self.volume.sum(axis=(1, 2, 3))
+
+    @cached_property
+    def extent(self) -> np.ndarray:
+        """Domain length along each axis (nb, 3), m: sum of dx, sum of dy, mean thickness."""
+        lx = self.lengths[0][:, :, 0, 0].sum(axis=1)
+        ly = self.lengths[1][:, 0, :, 0].sum(axis=1)
+        return np.stack([lx, ly, self.total_volume / (lx * ly)], axis=1)
+
     @property
     def bordered(self) -> bool:
         return any(t.start != 0 or t.stop != n for t, n in zip(self.target, self.shape))
@@ -89,8 +101,9 @@ def _take(a: np.ndarray, axis: int, index: int | slice) -> np.ndarray:
     return a[tuple(sl)]
 
 
+@lru_cache(maxsize=64)
 def band_order(shape: tuple[int, int, int], periodic: bool, slowest: int | None = None) -> tuple[np.ndarray, int]:
-    """Band position of each cell (natural C order) and the half bandwidth.
+    """Band position of each cell (natural C order, read-only) and the half bandwidth.
 
     The largest axis varies slowest (``slowest`` first among equally long ones, which
     leaves the bandwidth unchanged). For periodic problems each axis is visited in the
@@ -114,7 +127,9 @@ def band_order(shape: tuple[int, int, int], periodic: bool, slowest: int | None 
     pos = sum(grid[a] * stride[a] for a in range(3))
     reach = 2 if periodic else 1
     width = max((min(reach, shape[a] - 1)) * stride[a] for a in range(3))
-    return pos.ravel(), int(width)
+    pos = pos.ravel()
+    pos.setflags(write=False)  # shared by every batch of this shape
+    return pos, int(width)
 
 
 @dataclass
@@ -227,26 +242,38 @@ def _couplings(domain: LocalDomain, periodic: bool):
     return Couplings(list(half), inner, wrap), (first, second, values), total
 
 
-def _components(first, second, values, nb: int, n: int) -> tuple[np.ndarray, np.ndarray]:
-    """Connected-component label of every cell (nb * n,) over positive transmissibilities,
-    and the first cell of every component (flat indices).
+@dataclass
+class Components:
+    """Connected components of a batch over positive transmissibilities: the label of
+    every cell (nb * n,), the first cell of every component (flat indices), the domains
+    with a non-positive coupling (the others are one component, labelled by their
+    index) and the number of labels in use (labels are below it)."""
 
-    A domain whose couplings are all positive is one component (labelled by its index);
-    only the others go through the graph search.
-    """
+    labels: np.ndarray
+    start: np.ndarray
+    broken: np.ndarray
+    count: int
+
+
+def _components(first, second, values, nb: int, n: int, rows: np.ndarray | None = None) -> Components:
+    """Components of a batch from its coupling list values (nb, E); with ``rows``, values
+    holds only the couplings of those domains and all the others' are positive.
+    Only domains with a non-positive coupling go through the graph search."""
     labels = np.repeat(np.arange(nb), n)
-    broken = np.flatnonzero(np.any(values <= 0, axis=1))
+    suspect = np.flatnonzero(np.any(values <= 0, axis=1))
+    broken = suspect if rows is None else np.asarray(rows)[suspect]
     whole = np.setdiff1d(np.arange(nb), broken, assume_unique=True)
     if not broken.size:
-        return labels, whole * n
-    b, e = np.nonzero(values[broken] > 0)
+        return Components(labels, whole * n, broken, nb)
+    b, e = np.nonzero(values[suspect] > 0)
     rows, cols = b * n + first[e], b * n + second[e]
     size = broken.size * n
     graph = coo_matrix((np.ones(rows.size, dtype=np.int8), (rows, cols)), shape=(size, size))
-    found = connected_components(graph.tocsr(), directed=False)[1]
+    count, found = connected_components(graph.tocsr(), directed=False)
     labels.reshape(nb, n)[broken] = nb + found.reshape(broken.size, n)
     local_start = np.unique(found, return_index=True)[1]
-    return labels, np.concatenate([whole * n, broken[local_start // n] * n + local_start % n])
+    return Components(labels, np.concatenate([whole * n, broken[local_start // n] * n + local_start % n]), broken,
+                      nb + int(count))
 
 
 @dataclass
@@ -256,27 +283,30 @@ class Boundary:
     kinds: tuple[str, str, str]
 
 
-def _diagonal(domain: LocalDomain, couplings: Couplings, coupling_sum, boundary: Boundary, labels, first):
+def _diagonal(domain: LocalDomain, couplings: Couplings, coupling_sum, boundary: Boundary, components: Components):
     """Matrix diagonal (nb, sx, sy, sz) with Dirichlet terms and grounding, the mask of
     cells touching a Dirichlet face, and the mask of cells connected to the boundary data.
-    ``first`` holds the first cell of every component (the one grounded if needed)."""
+    The first cell of a component that touches no Dirichlet face is grounded."""
     nb, shape = domain.count, domain.shape
     n = int(np.prod(shape))
+    labels, first = components.labels, components.start
+    shaped_labels = labels.reshape(coupling_sum.shape)
     diag = coupling_sum.copy()
     touch = np.zeros(diag.shape, dtype=bool)
+    touched = np.zeros(components.count, dtype=bool)
     for a in range(3):
         if boundary.kinds[a] == "dirichlet":
             for end in (0, shape[a] - 1):
                 h = _take(couplings.half[a], a, end)
                 _take(diag, a, end)[...] += h
                 _take(touch, a, end)[...] |= h > 0
+                touched[_take(shaped_labels, a, end)[h > 0]] = True
     flat = diag.reshape(nb, n)
-    touched = np.zeros(labels.max() + 1, dtype=bool)
-    touched[labels[touch.ravel()]] = True
-    ground = first[~touched[labels[first]]]
+    untouched = ~touched[labels[first]]
+    ground = first[untouched]
     gb, gk = np.divmod(ground, n)
     flat[gb, gk] += np.where(flat[gb, gk] > 0, flat[gb, gk], 1.0)
-    if boundary.kinds[0] == "periodic":
+    if boundary.kinds[0] == "periodic" or not untouched.any():
         connected = coupling_sum > 0
     else:
         connected = (coupling_sum > 0) & touched[labels].reshape(diag.shape)
@@ -381,14 +411,6 @@ def _target_averages(domain: LocalDomain, fluxes, pressures, connected):
     return np.stack(velocity, axis=1) / scale, np.stack(gradient, axis=1) / scale
 
 
-def _block_lengths(domain: LocalDomain) -> np.ndarray:
-    """Block length along each axis (nb, 3), m: sum of dx, sum of dy, mean thickness."""
-    lx = domain.lengths[0][:, :, 0, 0].sum(axis=1)
-    ly = domain.lengths[1][:, 0, :, 0].sum(axis=1)
-    lz = domain.volume.reshape(domain.count, -1).sum(axis=1) / (lx * ly)
-    return np.stack([lx, ly, lz], axis=1)
-
-
 @dataclass
 class Solved:
     """Pressures of one system for each case (nb, sx, sy, sz), the Dirichlet-touch and
@@ -409,13 +431,14 @@ class LocalProblem:
         nb, shape = domain.count, domain.shape
         self.n = int(np.prod(shape))
         self.couplings, (self.first, self.second, self.values), self.coupling_sum = _couplings(domain, periodic)
-        self.labels, self.component_start = _components(self.first, self.second, self.values, nb, self.n)
+        self.components = _components(self.first, self.second, self.values, nb, self.n)
         self.pos, self.width = band_order(shape, periodic, slowest)
 
     @classmethod
     def leading(cls, whole: "LocalProblem", axis: int, stop: int) -> "LocalProblem":
         """The problem on the first ``stop`` cells along ``axis`` of ``whole``'s domains (no
-        periodic axes), cut from ``whole``'s transmissibilities instead of recomputed."""
+        periodic axes), cut from ``whole``'s transmissibilities and components instead of
+        recomputed: only domains with a non-positive coupling in ``whole`` can have one here."""
         self = cls.__new__(cls)
         domain = leading_part(whole.domain, axis, stop)
         domain.volume = _take(whole.domain.volume, axis, slice(0, stop))
@@ -427,18 +450,24 @@ class LocalProblem:
         if stop < whole.domain.shape[axis]:  # the couplings across the cut are not the part's
             _take(self.coupling_sum, axis, stop - 1)[...] -= _take(whole.couplings.inner[axis], axis, stop - 1)
         self.first, self.second, _, _ = _layout(shape, False)
-        self.values = np.concatenate([t.reshape(nb, -1) for t in inner], axis=1)
-        self.labels, self.component_start = _components(self.first, self.second, self.values, nb, self.n)
+        suspects = whole.components.broken
+        values = np.concatenate([t[suspects].reshape(suspects.size, int(np.prod(t.shape[1:]))) for t in inner], axis=1)
+        self.components = _components(self.first, self.second, values, nb, self.n, suspects)
         self.pos, self.width = band_order(shape, False)
         return self
+
+    @cached_property
+    def values(self) -> np.ndarray:
+        """Coupling list values (nb, E) in :func:`_layout` order; built on first use for a
+        :meth:`leading` part (its solves use the whole problem's)."""
+        return np.concatenate([t.reshape(self.domain.count, -1) for t in self.couplings.inner], axis=1)
 
     def system(self, boundary: Boundary, bc: str, cases: tuple[int, ...]):
         """Diagonal (nb, n), Dirichlet-touch and connected masks, and right-hand sides
         (nb, len(cases), n) of one system for the unit-gradient cases along the given axes."""
         domain, n = self.domain, self.n
         nb = domain.count
-        diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.labels,
-                                            self.component_start)
+        diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.components)
         rhs = np.empty((nb, len(cases), n))
         for column, case in enumerate(cases):
             rhs[:, column] = _right_hand_side(domain, self.couplings, boundary, bc, case).reshape(nb, n)
@@ -461,8 +490,17 @@ class LocalProblem:
         return (h * (1.0 - _take(p, d, 0))).reshape(self.domain.count, -1).sum(axis=1)
 
     def connected_through(self, touch: np.ndarray, d: int) -> np.ndarray:
-        """Per domain: does a connected path join the two Dirichlet faces normal to d?"""
-        return _connected_through(touch, self.labels, d)
+        """Per domain: does a connected path join the two Dirichlet faces normal to d?
+        (Read on the two end layers: a component that reaches both touches the first.)"""
+        n = touch.shape[d + 1]
+        labels = self.components.labels.reshape(touch.shape)
+        reach = []
+        for end in (0, n - 1):
+            reached = np.zeros(self.components.count, dtype=bool)
+            reached[_take(labels, d, end)[_take(touch, d, end)]] = True
+            reach.append(reached)
+        entry, touch_entry = _take(labels, d, 0), _take(touch, d, 0)
+        return ((reach[0] & reach[1])[entry] & touch_entry).reshape(touch.shape[0], -1).any(axis=1)
 
 
 def sealed_boundary(d: int) -> Boundary:
@@ -532,7 +570,7 @@ def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int) -> 
     :func:`leading_part` of the same domains) in one kernel call, sharing the elimination
     of the cells they have in common (:func:`upscale.solvers.solve_assembled`). None when
     the leading part does not come first in the batch's band order."""
-    shape, nb = problem.domain.shape, problem.domain.count
+    shape = problem.domain.shape
     inside = np.arange(problem.n).reshape(shape)
     inside = _take(inside[None], axis, slice(0, lead.domain.shape[axis]))[0].ravel()
     if problem.pos[inside].max() != lead.n - 1:
@@ -540,15 +578,11 @@ def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int) -> 
     boundary = sealed_boundary(axis)
     diag, touch, connected, rhs = problem.system(boundary, "sealed", (axis,))
     lead_diag, lead_touch, lead_connected, lead_rhs = lead.system(boundary, "sealed", (axis,))
-    embedded_diag = np.zeros((nb, problem.n))
-    embedded_diag[:, inside] = lead_diag
-    embedded_rhs = np.zeros((nb, 1, problem.n))
-    embedded_rhs[:, :, inside] = lead_rhs
     x, residual, x_lead, residual_lead = solve_batch_with_lead(
-        problem.first, problem.second, problem.pos, problem.values, diag, rhs, problem.width, lead.n, embedded_diag,
-        embedded_rhs)
+        problem.first, problem.second, problem.pos, problem.values, diag, rhs, problem.width, inside, lead_diag,
+        lead_rhs)
     return (Solved(problem.shaped(x), touch, connected, residual),
-            Solved(lead.shaped(x_lead[:, :, inside]), lead_touch, lead_connected, residual_lead))
+            Solved(lead.shaped(x_lead), lead_touch, lead_connected, residual_lead))
 
 
 def _right_hand_side(domain, couplings: Couplings, boundary: Boundary, bc: str, case: int) -> np.ndarray:
@@ -566,28 +600,12 @@ def _right_hand_side(domain, couplings: Couplings, boundary: Boundary, bc: str, 
     return rhs
 
 
-def _connected_through(touch, labels, d: int) -> np.ndarray:
-    """Per domain: does a connected path join the two Dirichlet faces normal to d?"""
-    nb = touch.shape[0]
-    n = touch.shape[d + 1]
-    inflow = np.zeros_like(touch)
-    outflow = np.zeros_like(touch)
-    _take(inflow, d, 0)[...] = _take(touch, d, 0)
-    _take(outflow, d, n - 1)[...] = _take(touch, d, n - 1)
-    count = labels.max() + 1
-    reach_in = np.zeros(count, dtype=bool)
-    reach_out = np.zeros(count, dtype=bool)
-    reach_in[labels[inflow.ravel()]] = True
-    reach_out[labels[outflow.ravel()]] = True
-    return (reach_in & reach_out)[labels].reshape(nb, -1).any(axis=1)
-
-
 def _sealed_unbordered(domain, q, through, d, velocity, gradient):
     """Sealed block without border: k = Q L^2 / (V dP) from the inflow Q at unit drop,
     exactly 0 without a connected path (stored as velocity Q L / V, gradient -1 / L)."""
     nb = domain.count
-    length = _block_lengths(domain)[:, d]
-    v = domain.volume.reshape(nb, -1).sum(axis=1)
+    length = domain.extent[:, d]
+    v = domain.total_volume
     through = through & (v > 0) & (length > 0)
     velocity[:, d, d] = np.divide(q * length, v, out=np.zeros(nb), where=through)
     gradient[:, d, d] = -np.divide(1.0, length, out=np.ones(nb), where=through)
@@ -602,7 +620,7 @@ def _tensor(domain, bc, velocity, gradient, residual):
         diagonal = np.zeros((nb, 3))
         # A target block that no flow crosses (closed inside a bordered domain) has a
         # gradient at rounding level, of either sign: it counts as none, k = 0.
-        length = _block_lengths(domain)
+        length = domain.extent
         np.divide(-u, g, out=diagonal, where=g < -GRADIENT_FLOOR / np.where(length > 0, length, np.inf))
         k[:, np.arange(3), np.arange(3)] = np.maximum(diagonal, 0.0)
         return k, residual, np.zeros(nb)
@@ -648,10 +666,11 @@ def _batches(group: BlockGroup, budget: int):
 
 
 def local_domains(fine: FineArrays, partition: Partition, border: int = 0, extend=(0, 0, 0),
-                  budget: int = BATCH_BYTES, only=(None, None, None)):
+                  budget: int = BATCH_BYTES, only=(None, None, None), permeability=None):
     """Yield (batch, LocalDomain) for every block (extended by ``extend`` blocks per axis),
-    or for the blocks whose coarse indices per axis are in ``only``."""
-    k = fine.flow_permeability()
+    or for the blocks whose coarse indices per axis are in ``only``. ``permeability``:
+    ``fine.flow_permeability()`` when the caller already has it."""
+    k = fine.flow_permeability() if permeability is None else permeability
     dz = np.ascontiguousarray(fine.dz)  # made contiguous once, so that no batch's gather copies it
     for group in block_groups(partition, border, extend, only):
         for batch in _batches(group, budget):

@@ -148,7 +148,7 @@ def _solve_refined(head, tail, split, d, band_first, band_second, v, b, y, r, re
 
 @njit(parallel=True, cache=True)
 def solve_assembled(first, second, position, values, diagonal, rhs, width, refinements, tolerance,
-                    lead, lead_diagonal, lead_rhs):  # pragma: no cover - compiled
+                    lead_index, lead_diagonal, lead_rhs):  # pragma: no cover - compiled
     """Assemble, factor and solve every system of a batch, LANES systems at a time.
 
     first, second (E,) int: coupled unknowns; position (n,) int: band position of each
@@ -156,19 +156,21 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
     diagonal); diagonal (nb, n); rhs (nb, m, n); unknowns in the callers' numbering. A
     last, incomplete lane group repeats the batch's last system in its spare lanes.
 
-    With ``lead`` > 0 a second, leading system is solved per domain: the unknowns at
-    band positions below ``lead``, the same couplings among them, its own diagonal
-    ``lead_diagonal`` (nb, n; read where the position is below ``lead``) and right-hand
-    sides ``lead_rhs`` (nb, m, n). Where both diagonals agree on the first lead - width
-    positions of every lane of a group, the elimination of those rows is done once for
-    both systems; otherwise the leading system is factored on its own.
-    Returns (x, relative residual (nb,), positive definite flag (nb,), leading x (nb, m, n;
-    0 off the leading unknowns), its relative residual (nb,)).
+    With ``lead_diagonal`` of ``lead`` > 0 columns a second, leading system is solved per
+    domain: the unknowns at band positions below ``lead``, the same couplings among them,
+    its own diagonal ``lead_diagonal`` (nb, lead) and right-hand sides ``lead_rhs``
+    (nb, m, lead), in its own numbering: unknown i is its number ``lead_index[i]`` (n,).
+    Where both diagonals agree on the first lead - width positions of every lane of a
+    group, the elimination of those rows is done once for both systems; otherwise the
+    leading system is factored on its own.
+    Returns (x, relative residual (nb,), positive definite flag (nb,), leading x
+    (nb, m, lead), its relative residual (nb,)).
     """
     nb, m, n = rhs.shape
+    lead = lead_diagonal.shape[1]
     edges = first.shape[0]
     x = np.zeros_like(rhs)
-    x_lead = np.zeros((nb if lead > 0 else 0, m, n))
+    x_lead = np.zeros((nb if lead > 0 else 0, m, lead))
     relative = np.zeros(nb)
     relative_lead = np.zeros(nb)
     ok = np.ones(nb, dtype=np.bool_)
@@ -191,7 +193,7 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
             for l in range(LANES):
                 d[j, l] = diagonal[source[l], i]
                 if j < lead:
-                    d_lead[j, l] = lead_diagonal[source[l], i]
+                    d_lead[j, l] = lead_diagonal[source[l], lead_index[i]]
         for e in range(edges):
             for l in range(LANES):
                 v[e, l] = values[source[l], e]
@@ -231,7 +233,7 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
                 for l in range(LANES):
                     b[j, l] = rhs[source[l], k, i]
                     if j < lead:
-                        b_lead[j, l] = lead_rhs[source[l], k, i]
+                        b_lead[j, l] = lead_rhs[source[l], k, lead_index[i]]
             error = _solve_refined(c, c[n:], n, d, band_first, band_second, v, b, y, r, refinements, tolerance)
             error_lead = np.zeros(LANES)
             if lead > 0:
@@ -245,7 +247,7 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
                     j = position[i]
                     x[base + l, k, i] = y[j, l]
                     if j < lead:
-                        x_lead[base + l, k, i] = y_lead[j, l]
+                        x_lead[base + l, k, lead_index[i]] = y_lead[j, l]
     return x, relative, ok, x_lead, relative_lead
 
 
@@ -253,7 +255,7 @@ def _exact(array, dtype):
     return np.ascontiguousarray(array, dtype=dtype)
 
 
-def _run(first, second, position, values, diagonal, rhs, width, refinements, tolerance, lead, lead_diagonal,
+def _run(first, second, position, values, diagonal, rhs, width, refinements, tolerance, lead_index, lead_diagonal,
          lead_rhs):
     """Call the kernel with exact types; raise ``FloatingPointError`` if a system is not
     positive definite."""
@@ -261,7 +263,7 @@ def _run(first, second, position, values, diagonal, rhs, width, refinements, tol
         x, relative, ok, x_lead, relative_lead = solve_assembled(
             _exact(first, np.int64), _exact(second, np.int64), _exact(position, np.int64), _exact(values, float),
             _exact(diagonal, float), _exact(rhs, float), int(width), int(refinements), float(tolerance),
-            int(lead), _exact(lead_diagonal, float), _exact(lead_rhs, float))
+            _exact(lead_index, np.int64), _exact(lead_diagonal, float), _exact(lead_rhs, float))
     if not ok.all():
         raise FloatingPointError(f"{int((~ok).sum())} local system(s) not positive definite")
     return x, relative, x_lead, relative_lead
@@ -273,16 +275,23 @@ def solve_batch(first: np.ndarray, second: np.ndarray, position: np.ndarray, val
     """Checked wrapper of :func:`solve_assembled`; raises ``FloatingPointError`` if a
     system is not positive definite. Returns (x (nb, m, n), relative residual (nb,))."""
     x, relative, _, _ = _run(first, second, position, values, diagonal, rhs, width, refinements, tolerance,
-                             0, np.zeros((0, 0)), np.zeros((0, 0, 0)))
+                             np.zeros(0), np.zeros((diagonal.shape[0], 0)), np.zeros((rhs.shape[0], rhs.shape[1], 0)))
     return x, relative
 
 
 def solve_batch_with_lead(first: np.ndarray, second: np.ndarray, position: np.ndarray, values: np.ndarray,
-                          diagonal: np.ndarray, rhs: np.ndarray, width: int, lead: int, lead_diagonal: np.ndarray,
-                          lead_rhs: np.ndarray, refinements: int = 2, tolerance: float = 1e-12):
-    """:func:`solve_batch` plus a leading system on the first ``lead`` band positions
-    (see :func:`solve_assembled`). Returns (x, relative residual, leading x, its residual)."""
-    if not 0 < lead <= diagonal.shape[1]:
-        raise ValueError(f"leading system size {lead} is not between 1 and {diagonal.shape[1]}")
-    return _run(first, second, position, values, diagonal, rhs, width, refinements, tolerance, lead,
+                          diagonal: np.ndarray, rhs: np.ndarray, width: int, inside: np.ndarray,
+                          lead_diagonal: np.ndarray, lead_rhs: np.ndarray, refinements: int = 2,
+                          tolerance: float = 1e-12):
+    """:func:`solve_batch` plus a leading system on the unknowns ``inside`` (L,), which
+    must be those at the first L band positions (see :func:`solve_assembled`);
+    lead_diagonal (nb, L) and lead_rhs (nb, m, L) follow the order of ``inside``.
+    Returns (x, relative residual, leading x (nb, m, L), its residual)."""
+    inside = np.asarray(inside)
+    if not 0 < inside.size <= diagonal.shape[1] or not np.array_equal(np.sort(position[inside]),
+                                                                       np.arange(inside.size)):
+        raise ValueError("the leading unknowns are not the first band positions")
+    lead_index = np.full(diagonal.shape[1], -1)
+    lead_index[inside] = np.arange(inside.size)
+    return _run(first, second, position, values, diagonal, rhs, width, refinements, tolerance, lead_index,
                 lead_diagonal, lead_rhs)

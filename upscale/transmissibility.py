@@ -57,7 +57,8 @@ def flow_transmissibility(cells: FineArrays, partition: Partition, border: int =
     axis (the others stay 0). Returns (transmissibilities per axis in ``units``, residuals
     per axis).
     """
-    faces, residuals, _ = _face_problems(cells, partition, border, units, progress, budget, only, sealed=False)
+    faces, residuals, _ = _face_problems(cells, partition, border, units, progress, budget, only, sealed=False,
+                                         permeability=cells.flow_permeability())
     return faces, residuals
 
 
@@ -74,8 +75,9 @@ def sealed_and_face_flow(cells: FineArrays, partition: Partition, border: int = 
     order does not start with the block, get their own sealed solve.
     Returns (sealed FlowResult, face transmissibilities per axis, face residuals per axis).
     """
+    permeability = cells.flow_permeability()
     faces, residuals, (diagonal, residual, done) = _face_problems(cells, partition, border, units, progress,
-                                                                  budget, only, sealed=True)
+                                                                  budget, only, True, permeability)
     wanted = np.zeros(partition.shape, dtype=bool)
     wanted[np.ix_(*(np.arange(n) if o is None else np.asarray(o) for n, o in zip(partition.shape, only)))] = True
     total = int(wanted.sum())
@@ -84,7 +86,8 @@ def sealed_and_face_flow(cells: FineArrays, partition: Partition, border: int = 
         if remaining.any():
             hull = tuple(np.flatnonzero(remaining.any(axis=tuple(b for b in range(3) if b != a))) for a in range(3))
             k, r = np.zeros(partition.shape), np.zeros(partition.shape)
-            for batch, domain in local_domains(cells, partition, border, budget=budget, only=hull):
+            for batch, domain in local_domains(cells, partition, border, budget=budget, only=hull,
+                                               permeability=permeability):
                 tensor, batch_residual, _ = solve_domains(domain, "sealed", directions=(axis,))
                 batch.scatter(k, tensor[:, axis, axis])
                 batch.scatter(r, batch_residual)
@@ -101,10 +104,11 @@ def sealed_and_face_flow(cells: FineArrays, partition: Partition, border: int = 
 
 
 def _face_problems(cells: FineArrays, partition: Partition, border: int, units: str, progress, budget: int, only,
-                   sealed: bool):
+                   sealed: bool, permeability):
     """Face transmissibilities and residuals per axis; with ``sealed``, also per axis each
     block's sealed permeability from the face problems' leading parts, the residual of
-    those solves and the mask of blocks done (else None)."""
+    those solves and the mask of blocks done (else None). ``permeability``:
+    ``cells.flow_permeability()``."""
     _, constant, to_length = unit_system(units)
     faces, residuals = [], []
     diagonal = [np.zeros(partition.shape) for _ in range(3)]
@@ -120,7 +124,7 @@ def _face_problems(cells: FineArrays, partition: Partition, border: int, units: 
             owners = list(only)
             if owners[axis] is not None:
                 owners[axis] = np.asarray(owners[axis])[np.asarray(owners[axis]) < shape[axis]]
-            for batch, domain in local_domains(cells, partition, border, extend, budget, tuple(owners)):
+            for batch, domain in local_domains(cells, partition, border, extend, budget, tuple(owners), permeability):
                 problem = LocalProblem(domain, periodic=False, slowest=axis)
                 pair = None
                 if sealed:
