@@ -43,12 +43,16 @@ def test_batched_solve_matches_scipy(reverse):
 
 
 @pytest.mark.parametrize("differ", [False, True])
-def test_leading_system_matches_scipy(differ):
+@pytest.mark.parametrize("wanted", ["solution", "rates", "rates, other head rhs", "rates, outflow on head"])
+def test_leading_system_matches_scipy(differ, wanted):
     # Reference: scipy.sparse.linalg.spsolve (SuperLU) on the leading system assembled on
     # its own: the unknowns at band positions below `lead`, the couplings among them and
     # its own diagonal. With equal diagonals on the first lead - width positions the
     # kernel shares that elimination with the whole system; with `differ` one lane's
-    # diagonal differs there, so its lane group factors the leading system alone.
+    # diagonal differs there, so its lane group factors the leading system alone. With
+    # outflow weights only the rates sum(outflow * x) are returned: solved on the last
+    # `width` positions alone where the weights sit there and both right-hand sides agree
+    # before them ("rates"), else from the whole leading solution (the other two cases).
     shape = (4, 3, 2)
     n, width, lead = 24, 6, 15
     first, second, values, diagonal, rhs = _grid_systems(shape, 11, seed=5)
@@ -60,18 +64,28 @@ def test_leading_system_matches_scipy(differ):
     if differ:
         lead_diagonal[9, np.flatnonzero(position == 0)] += 0.5
     lead_rhs = rng.standard_normal(rhs.shape)
+    if wanted != "rates, other head rhs":
+        lead_rhs[:, :, ~tail] = rhs[:, :, ~tail]
     inside = rng.permutation(np.flatnonzero(position < lead))  # the leading system's own numbering
-    x, residual, x_lead, residual_lead = solve_batch_with_lead(first, second, position, values, diagonal, rhs,
-                                                               width, inside, lead_diagonal[:, inside],
-                                                               lead_rhs[:, :, inside])
+    outflow = None
+    if wanted != "solution":
+        outflow = np.where(position[inside] >= lead - width, rng.uniform(0.5, 2.0, (11, inside.size)), 0.0)
+        if wanted == "rates, outflow on head":
+            outflow[:, np.argmin(position[inside])] = 1.0
+    x, residual, lead_result, residual_lead = solve_batch_with_lead(first, second, position, values, diagonal, rhs,
+                                                                    width, inside, lead_diagonal[:, inside],
+                                                                    lead_rhs[:, :, inside], outflow)
     for b in range(11):
         a = sp.coo_matrix((-values[b], (first, second)), shape=(n, n))
         matrix = (a + a.T + sp.diags(diagonal[b])).tocsc()
         leading = (a + a.T + sp.diags(lead_diagonal[b])).tocsc()[inside][:, inside]
         for column in range(2):
             np.testing.assert_allclose(x[b, column], spla.spsolve(matrix, rhs[b, column]), rtol=1e-10, atol=1e-12)
-            np.testing.assert_allclose(x_lead[b, column], spla.spsolve(leading, lead_rhs[b, column, inside]),
-                                       rtol=1e-10, atol=1e-12)
+            reference = spla.spsolve(leading, lead_rhs[b, column, inside])
+            if outflow is None:
+                np.testing.assert_allclose(lead_result[b, column], reference, rtol=1e-10, atol=1e-12)
+            else:
+                np.testing.assert_allclose(lead_result[b, column], outflow[b] @ reference, rtol=1e-10)
     assert max(residual.max(), residual_lead.max()) <= 1e-12
     with pytest.raises(ValueError, match="first band positions"):
         solve_batch_with_lead(first, second, position, values, diagonal, rhs, width, inside[1:],

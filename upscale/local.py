@@ -413,8 +413,9 @@ def _target_averages(domain: LocalDomain, fluxes, pressures, connected):
 
 @dataclass
 class Solved:
-    """Pressures of one system for each case (nb, sx, sy, sz), the Dirichlet-touch and
-    boundary-connected cell masks, and the relative residual per domain (nb,)."""
+    """Pressures of one system for each case (nb, sx, sy, sz; none when only a rate was
+    solved for), the Dirichlet-touch and boundary-connected cell masks, and the relative
+    residual per domain (nb,)."""
 
     pressures: list[np.ndarray]
     touch: np.ndarray
@@ -548,11 +549,17 @@ def measure(problem: LocalProblem, solved: Solved, boundary: Boundary, bc: str, 
             velocity[~through, :, case] = 0.0
 
 
-def sealed_permeability(problem: LocalProblem, solved: Solved, axis: int) -> np.ndarray:
-    """Sealed effective permeability along ``axis`` (nb,) in mD from that axis's solve."""
+def sealed_permeability(problem: LocalProblem, solved: Solved, axis: int, rate: np.ndarray | None = None
+                        ) -> np.ndarray:
+    """Sealed effective permeability along ``axis`` (nb,) in mD from that axis's solve, or
+    for domains without a border from the rate through them at unit drop (mD*m) when given."""
     nb = problem.domain.count
     velocity, gradient = np.zeros((nb, 3, 3)), np.zeros((nb, 3, 3))
-    measure(problem, solved, sealed_boundary(axis), "sealed", (axis,), velocity, gradient)
+    if rate is None:
+        measure(problem, solved, sealed_boundary(axis), "sealed", (axis,), velocity, gradient)
+    else:
+        through = problem.connected_through(solved.touch, axis)
+        _sealed_unbordered(problem.domain, rate, through, axis, velocity, gradient)
     return _tensor(problem.domain, "sealed", velocity, gradient, solved.residual)[0][:, axis, axis]
 
 
@@ -565,11 +572,17 @@ def leading_part(domain: LocalDomain, axis: int, stop: int) -> LocalDomain:
                        target=domain.target)
 
 
-def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int) -> tuple[Solved, Solved] | None:
+def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int
+                       ) -> tuple[Solved, Solved, np.ndarray | None] | None:
     """Sealed solves along ``axis`` of a batch and of its leading part ``lead`` (a
     :func:`leading_part` of the same domains) in one kernel call, sharing the elimination
     of the cells they have in common (:func:`upscale.solvers.solve_assembled`). None when
-    the leading part does not come first in the batch's band order."""
+    the leading part does not come first in the batch's band order.
+
+    Returns (the batch's Solved, the leading part's, its rate at unit drop (nb,) or
+    None). Without a border only that rate is needed (:func:`sealed_permeability`): it is
+    solved for as the flow through the outflow face, sum h p over the last layer, and
+    the leading part's Solved has no pressures."""
     shape = problem.domain.shape
     inside = np.arange(problem.n).reshape(shape)
     inside = _take(inside[None], axis, slice(0, lead.domain.shape[axis]))[0].ravel()
@@ -578,11 +591,19 @@ def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int) -> 
     boundary = sealed_boundary(axis)
     diag, touch, connected, rhs = problem.system(boundary, "sealed", (axis,))
     lead_diag, lead_touch, lead_connected, lead_rhs = lead.system(boundary, "sealed", (axis,))
+    outflow = None
+    if not lead.domain.bordered:
+        outflow = np.zeros((lead.domain.count,) + lead.domain.shape)
+        end = lead.domain.shape[axis] - 1
+        _take(outflow, axis, end)[...] = _take(lead.couplings.half[axis], axis, end)
+        outflow = outflow.reshape(lead.domain.count, lead.n)
     x, residual, x_lead, residual_lead = solve_batch_with_lead(
         problem.first, problem.second, problem.pos, problem.values, diag, rhs, problem.width, inside, lead_diag,
-        lead_rhs)
-    return (Solved(problem.shaped(x), touch, connected, residual),
-            Solved(lead.shaped(x_lead), lead_touch, lead_connected, residual_lead))
+        lead_rhs, outflow)
+    solved = Solved(problem.shaped(x), touch, connected, residual)
+    if outflow is None:
+        return solved, Solved(lead.shaped(x_lead), lead_touch, lead_connected, residual_lead), None
+    return solved, Solved([], lead_touch, lead_connected, residual_lead), x_lead[:, 0]
 
 
 def _right_hand_side(domain, couplings: Couplings, boundary: Boundary, bc: str, case: int) -> np.ndarray:

@@ -134,8 +134,8 @@ def _face_problems(cells: FineArrays, partition: Partition, border: int, units: 
                 if pair is None:
                     solved = problem.solve(sealed_boundary(axis), "sealed", (axis,))
                 else:
-                    solved, lead_solved = pair
-                    batch.scatter(diagonal[axis], sealed_permeability(lead, lead_solved, axis))
+                    solved, lead_solved, lead_rate = pair
+                    batch.scatter(diagonal[axis], sealed_permeability(lead, lead_solved, axis, lead_rate))
                     batch.scatter(sealed_residual[axis], lead_solved.residual)
                     batch.scatter(done[axis], np.ones(batch.count, dtype=bool))
                 p = solved.pressures[0]
