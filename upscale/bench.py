@@ -27,7 +27,7 @@ from .synthetic import lognormal_field
 from .transmissibility import flow_transmissibility, sealed_and_face_flow
 
 BLOCK = (5, 5, 5)
-REPEATS = 3  # interleaved timings of sealed, multipliers and both together; the least of each
+REPEATS = 5  # interleaved timings of sealed, multipliers and both together; the least of each
 
 
 def _end(shape, axis: int, index: int) -> tuple[slice, ...]:
