@@ -259,6 +259,27 @@ def test_isolated_pocket_is_left_out():
         assert np.all(np.isfinite(single_block(k, bc)[0]))
 
 
+@pytest.mark.parametrize("bc", ["sealed", "periodic", "linear"])
+def test_dead_end_block_with_a_border_has_zero_permeability(bc):
+    # Property of K = -<u> <grad p>^-1 over the target (Wu, Efendiev & Hou 2002): a block
+    # joined to the rest of its bordered domain through one cell only is a dead end; no
+    # flow crosses it, its pressure is uniform and both averages are rounding noise of
+    # either sign. Their quotient is no permeability: the tensor must be exactly 0 (it
+    # was of order 1 for periodic and linear before the gradient floor).
+    rng = np.random.default_rng(0)
+    shape = (9, 9, 9)
+    k = np.exp(rng.normal(0.0, 0.5, shape))
+    ring = np.zeros(shape, dtype=bool)
+    ring[2:7, 2:7, 2:7] = True
+    ring[3:6, 3:6, 3:6] = False
+    k[ring] = 0.0  # the centre block's border ring is closed ...
+    k[2, 4, 4] = 1.0  # ... but for one cell
+    cells = make_cells(k, k.copy(), k.copy(), dx=np.ones(9), dy=np.ones(9), dz=np.ones(shape))
+    result = flow_tensors(cells, make_partition(shape, ratio=(3, 3, 3)), bc, border=2)
+    assert np.all(result.tensor[1, 1, 1] == 0.0)
+    assert np.all(np.isfinite(result.tensor)) and result.tensor[0, 0, 0, 0, 0] > 0
+
+
 def test_extreme_contrast_is_solved_accurately():
     k = np.where(np.random.default_rng(5).random((6, 6, 6)) < 0.5, 1e-6, 1e6)
     for bc in ("sealed", "periodic", "linear"):

@@ -647,10 +647,13 @@ def _tensor(domain, bc, velocity, gradient, residual):
         return k, residual, np.zeros(nb)
     if not domain.bordered:
         gradient = np.broadcast_to(-np.eye(3), (nb, 3, 3))
-    k = np.zeros((nb, 3, 3))
-    determinant = np.linalg.det(gradient)
-    good = np.abs(determinant) > 0
-    k[good] = -velocity[good] @ np.linalg.inv(gradient[good])
+    # A direction in which the target shows no pressure gradient (a dead end inside a
+    # bordered domain: a gradient at rounding level, velocity too) carries no flow: it is
+    # left out of the inverse (singular values below GRADIENT_FLOOR of the unit imposed
+    # mean gradient), rather than dividing two rounding errors.
+    left, values, right = np.linalg.svd(gradient)
+    kept = np.where(values > GRADIENT_FLOOR, 1.0 / np.maximum(values, GRADIENT_FLOOR), 0.0)
+    k = -velocity @ np.einsum("bji,bj,bkj->bik", right, kept, left)
     norm = np.linalg.norm(k, axis=(1, 2))
     asymmetry = np.divide(np.linalg.norm(k - k.transpose(0, 2, 1), axis=(1, 2)), norm,
                           out=np.zeros(nb), where=norm > 0)
