@@ -172,7 +172,8 @@ def _refine(head, tail, split, d, band_first, band_second, v, b, y, r, refinemen
             tolerance):  # pragma: no cover - compiled
     """Refine a first solution y (n, LANES) of the factored systems (factor rows as in
     :func:`_forward`) for right-hand sides b until the relative residual is at most
-    ``tolerance`` (at most ``refinements`` times); returns it (LANES,)."""
+    ``tolerance`` (at most ``refinements`` times); returns it (LANES,) and the number of
+    refinements made."""
     for attempt in range(refinements + 1):
         _residual(d, band_first, band_second, v, y, b, r)
         error = _relative(r, b)
@@ -180,7 +181,7 @@ def _refine(head, tail, split, d, band_first, band_second, v, b, y, r, refinemen
             break
         _substitute(head, tail, split, r)
         y += r
-    return error
+    return error, attempt
 
 
 @njit(cache=True, fastmath=True)
@@ -191,7 +192,7 @@ def _solve_refined(head, tail, split, d, band_first, band_second, v, b, y, r, re
     most ``tolerance``; returns it (LANES,)."""
     y[:] = b
     _substitute(head, tail, split, y)
-    return _refine(head, tail, split, d, band_first, band_second, v, b, y, r, refinements, tolerance)
+    return _refine(head, tail, split, d, band_first, band_second, v, b, y, r, refinements, tolerance)[0]
 
 
 @njit(parallel=True, cache=True)
@@ -217,7 +218,9 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
     ``width`` band positions only and both right-hand sides agree before them, the
     leading system is then solved on those positions alone: its elimination shared,
     the forward solve of the first rows shared too, and its residual that of the small
-    system left on those positions.
+    system left on those positions. That is kept where the whole system's first solve
+    met the tolerance and so does the small system's; otherwise (very high contrasts)
+    the leading system is solved whole and refined.
     Returns (x, relative residual (nb,), positive definite flag (nb,), leading x
     (nb, m, lead), or (nb, m, 0) with outflow weights, leading rates (nb, m), leading
     relative residual (nb,)).
@@ -308,30 +311,35 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
                     if b_lead[j, l] != b[j, l]:
                         alike = False
             error_lead = np.zeros(LANES)
+            tail_done = False
             if alike:  # the leading solution on its last rows from the shared forward solve
                 y[:] = b
                 _forward(c, c[n:], n, y, 0, split)
                 z = y[split:lead] + b_lead[split:lead] - b[split:lead]
                 _forward(c, c[n:], n, y, split, n)
                 _backward(c, c[n:], n, y)
-                error = _refine(c, c[n:], n, d, band_first, band_second, v, b, y, r, refinements, tolerance)
+                error, refined = _refine(c, c[n:], n, d, band_first, band_second, v, b, y, r, refinements,
+                                         tolerance)
                 p_tail = z.copy()
                 _substitute(lead_tail, lead_tail, lead - split, p_tail)
                 _band_residual(tail_matrix, p_tail, z, r_lead[split:lead])
                 error_lead = _relative(r_lead[split:lead], z)
+                # Trusted only where the shared rows needed no refinement for the whole
+                # system and the last layer's system meets the tolerance; else solved whole.
+                tail_done = refined == 0 and error_lead.max() <= tolerance
                 y_lead[split:lead] = p_tail
             else:
                 error = _solve_refined(c, c[n:], n, d, band_first, band_second, v, b, y, r, refinements, tolerance)
-                if lead > 0:
-                    error_lead = _solve_refined(lead_head, lead_tail, lead_split, d_lead, band_first, band_second,
-                                                v, b_lead, y_lead, r_lead, refinements, tolerance)
+            if lead > 0 and not tail_done:
+                error_lead = _solve_refined(lead_head, lead_tail, lead_split, d_lead, band_first, band_second,
+                                            v, b_lead, y_lead, r_lead, refinements, tolerance)
             for l in range(min(LANES, nb - base)):
                 relative[base + l] = max(relative[base + l], error[l])
                 relative_lead[base + l] = max(relative_lead[base + l], error_lead[l])
                 ok[base + l] = lane_ok[l]
                 if rates:
                     total = 0.0
-                    for j in range(split if alike else 0, lead):
+                    for j in range(split if tail_done else 0, lead):
                         total += outflow[j, l] * y_lead[j, l]
                     rate_lead[base + l, k] = total
                 for i in range(n):
