@@ -8,6 +8,9 @@ thread-local memory, factors them (Cholesky, A = L L^T), solves all right-hand s
 and refines the solutions until the relative residual ||b - A x|| / ||b|| is at most the
 tolerance. Cost per system ~ n w^2 / 2, memory ~ n (w + 1) LANES per thread; residuals
 are computed from the coupling list (~6 n per system rather than 2 n w from a band copy).
+A second, leading system on the first band positions (a sealed block inside the face
+problem after it) can be solved in the same pass, sharing the elimination of those rows
+(:func:`solve_assembled`).
 
 Band layout: ``band[j, d, l] = A_l[j + d, j]`` for d = 0..w, with LANES systems side by
 side in the last axis so that every inner loop runs over lanes (SIMD). Measured on
