@@ -209,8 +209,9 @@ class BlockGroup:
 @njit(parallel=True, cache=True)
 def _copy_boxes(values, start_x, start_y, start_z, out):  # pragma: no cover - compiled
     """out[b] = the box of out's shape at (start_x[i], start_y[j], start_z[k]) of values,
-    b running over (i, j, k) in C order; a compiled copy, about 2-3 x faster than a
-    gather through a flat index array of the same size (no index to read)."""
+    b running over (i, j, k) in C order. A compiled copy: no flat index array to build,
+    keep or read (measured 1.6 x faster than ``np.take`` through one on the benchmark's
+    face-problem batches)."""
     nb, sx, sy, sz = out.shape
     ny, nz = start_y.shape[0], start_z.shape[0]
     for b in prange(nb):
