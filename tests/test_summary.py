@@ -45,6 +45,8 @@ def test_counts_and_sizes():
     assert s["shape"] == [NX, NY, NZ]
     assert s["cells"] == NX * NY * NZ
     assert s["pinched_cells"] == 3
+    # By hand: (0, 0, 1) and (2, 1, 3) have active cells above and below; (3, 2, 0) is on top.
+    assert s["pinched_between_active"] == 2
     expected_active = NX * NY * NZ - 3 - 2  # 3 pinched (one also flagged) + 2 flagged only
     assert s["active_cells"] == expected_active
     sizes = s["sizes"]
@@ -198,6 +200,9 @@ def test_format_summary():
         assert word in text, word
     assert f"{NX} x {NY} x {NZ}" in text
     assert f"{s['active_cells']} active" in text
+    assert "2 of them between active cells of their column" in text
+    clear = format_summary({**s, "pinched_between_active": 0})
+    assert "pinched (dz = 0)" in clear and "between active cells" not in clear
     assert f"{s['volumes']['pore']:.4g}" in text
     # One row per variable, with its six statistics in order.
     row = next(line for line in text.splitlines() if line.startswith("porosity"))

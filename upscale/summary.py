@@ -59,11 +59,23 @@ def _transmissibility(ds: xr.Dataset) -> dict:
     return out
 
 
+def _pinched_between_active(dz: np.ndarray, active: np.ndarray) -> int:
+    """Pinched cells (dz = 0) with an active cell above and below them in their column:
+    where a pinch-out connection would join the two (upscale carries no flow across them)."""
+    active = np.asarray(active, dtype=bool)
+    above = np.zeros_like(active)
+    above[:, :, 1:] = np.logical_or.accumulate(active, axis=2)[:, :, :-1]
+    below = np.zeros_like(active)
+    below[:, :, :-1] = np.logical_or.accumulate(active[:, :, ::-1], axis=2)[:, :, ::-1][:, :, 1:]
+    return int(np.count_nonzero((dz == 0) & above & below))
+
+
 def field_summary(ds: xr.Dataset) -> dict:
     """Summarise a normalised field (from :func:`upscale.field.open_field` or ``validate``).
 
     Keys: ``shape`` [nx, ny, nz]; ``cells``, ``active_cells``, ``pinched_cells`` (dz == 0,
-    active or not); ``sizes`` (m): dx, dy, dz min/max over all cells, ``dz_min_positive``,
+    active or not), ``pinched_between_active`` (those with an active cell above and below in
+    their column); ``sizes`` (m): dx, dy, dz min/max over all cells, ``dz_min_positive``,
     ``length_x`` = sum dx, ``length_y`` = sum dy, and ``thickness`` min/max/mean over columns
     of the column total sum(dz); ``values``: for kx, ky, kz (mD), porosity, ntg (fractions)
     the min, p10, p50, p90, max and mean over active cells, each cell counting once (numpy's
@@ -91,6 +103,7 @@ def field_summary(ds: xr.Dataset) -> dict:
         "cells": int(active.size),
         "active_cells": int(np.count_nonzero(active)),
         "pinched_cells": int(np.count_nonzero(fine.dz == 0)),
+        "pinched_between_active": _pinched_between_active(fine.dz, active),
         "sizes": {
             "units": "m",
             "dx": _range(fine.dx),
@@ -147,6 +160,14 @@ def _table(header: list[str], rows: list[list[str]]) -> list[str]:
     return lines
 
 
+def _pinch_note(between: int) -> str:
+    """The caution printed when pinched cells lie between active cells of a column."""
+    if not between:
+        return ""
+    return (f", {between} of them between active cells of their column: no flow crosses them "
+            f"(no pinch-out connections), so they seal their columns vertically")
+
+
 def format_summary(summary: dict) -> str:
     """A plain aligned text table of a :func:`field_summary` dict, for a terminal."""
     nx, ny, nz = summary["shape"]
@@ -154,7 +175,7 @@ def format_summary(summary: dict) -> str:
     thickness = sizes["thickness"]
     lines = [
         f"Field {nx} x {ny} x {nz} = {summary['cells']} cells: {summary['active_cells']} active, "
-        f"{summary['pinched_cells']} pinched (dz = 0)",
+        f"{summary['pinched_cells']} pinched (dz = 0)" + _pinch_note(summary['pinched_between_active']),
         f"Cell sizes (m): dx {_number(sizes['dx']['min'])} .. {_number(sizes['dx']['max'])}, "
         f"dy {_number(sizes['dy']['min'])} .. {_number(sizes['dy']['max'])}, "
         f"dz {_number(sizes['dz']['min'])} .. {_number(sizes['dz']['max'])}",
