@@ -255,13 +255,13 @@ class Components:
     count: int
 
 
-def _components(first, second, values, nb: int, n: int, rows: np.ndarray | None = None) -> Components:
-    """Components of a batch from its coupling list values (nb, E); with ``rows``, values
-    holds only the couplings of those domains and all the others' are positive.
+def _components(first, second, values, nb: int, n: int, domains: np.ndarray | None = None) -> Components:
+    """Components of a batch from its coupling list values (nb, E); with ``domains``,
+    values holds only the couplings of those domains and all the others' are positive.
     Only domains with a non-positive coupling go through the graph search."""
     labels = np.repeat(np.arange(nb), n)
     suspect = np.flatnonzero(np.any(values <= 0, axis=1))
-    broken = suspect if rows is None else np.asarray(rows)[suspect]
+    broken = suspect if domains is None else np.asarray(domains)[suspect]
     whole = np.setdiff1d(np.arange(nb), broken, assume_unique=True)
     if not broken.size:
         return Components(labels, whole * n, broken, nb)

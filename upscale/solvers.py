@@ -273,10 +273,11 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
                 if d_lead[j, l] != d[j, l]:
                     shared = False
         tail_only = shared and rates
-        for j in range(split):
-            for l in range(LANES):
-                if outflow[j, l] != 0.0:
-                    tail_only = False
+        if tail_only:  # outflow holds no rows without rates
+            for j in range(split):
+                for l in range(LANES):
+                    if outflow[j, l] != 0.0:
+                        tail_only = False
         if shared:  # leading factor: c's rows below split, then its own last rows
             _factor(c, lane_ok, 0, split)
             lead_head, lead_split = c, split
@@ -284,7 +285,7 @@ def solve_assembled(first, second, position, values, diagonal, rhs, width, refin
             for j in range(split, lead):
                 for l in range(LANES):
                     lead_tail[j - split, 0, l] += d_lead[j, l] - d[j, l]
-            tail_matrix = lead_tail.copy()
+            tail_matrix = lead_tail.copy() if tail_only else lead_tail  # kept for the short cut's residual
             _factor(lead_tail, lane_ok, 0, lead - split)
             _factor(c, lane_ok, split, n)
         else:
