@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from upscale.field import fine_dataset
+from upscale.io.schema import fine_dataset
 
 PROJECT_ROOT = Path(__file__).resolve().parents[1]
 SMALL_SHAPE = (6, 6, 6)

@@ -2,11 +2,12 @@
 
 import numpy as np
 
-from upscale.field import arrays, fine_dataset, validate
+from upscale.io.schema import arrays, fine_dataset
+from upscale.io.validation import validate
 
 
 def make_cells(kx, ky=None, kz=None, dx=None, dy=None, dz=None, porosity=0.2, ntg=None, active=None):
-    """A validated FineArrays from permeability arrays (mD) and optional sizes (m)."""
+    """A validated GridArrays from permeability arrays (mD) and optional sizes (m)."""
     kx = np.asarray(kx, dtype=float)
     shape = kx.shape
     ky = kx if ky is None else ky

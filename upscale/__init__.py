@@ -1,10 +1,22 @@
-"""upscale: coarsen fine geomodels for flow simulation and prove the coarse grid still
-flows like the fine one.
+"""upscale: turn a fine geomodel into a coarse simulation grid, and measure with flow
+solves how much of the fine model's flow the coarse grid keeps.
 
     import upscale
     fine = upscale.open_field("fields/demo.nc")
     coarse = upscale.coarsen(fine, ratio=(5, 5, 5), method="flow", bc="sealed")
     upscale.write(coarse, "out.nc")
+    metrics = upscale.check(fine, coarse)
+
+The package is built in rooms, each importing only those before it::
+
+    _runtime, errors, about   standard library only
+    core                      numerics on numpy arrays (numpy, scipy, numba, pyamg)
+    io                        NetCDF fields and coarse files (xarray, netCDF4)
+    scale                     coarsening at any size: in memory or in boxes, clusters (dask)
+    checks                    coarse grid against fine field -> metrics dicts
+    report                    HTML page, figures, text tables (matplotlib)
+    gallery                   synthetic fields and the demo scenario
+    cli                       the command line
 
 The public names are loaded on first use, so that ``upscale --help`` starts quickly and
 an interrupt while the heavy libraries load ends cleanly.
@@ -12,13 +24,13 @@ an interrupt while the heavy libraries load ends cleanly.
 
 from importlib import import_module
 
+from .about import tool_version
 from .errors import InputError
-from .version import tool_version
 
 __version__ = tool_version()
 __all__ = ["open_field", "coarsen", "write", "check", "InputError", "__version__"]
 
-_PUBLIC = {"open_field": "field", "write": "field", "coarsen": "coarse_grid", "check": "quality"}
+_PUBLIC = {"open_field": "io.reading", "write": "scale.stream", "coarsen": "scale.coarsen", "check": "checks.run"}
 
 
 def __getattr__(name):

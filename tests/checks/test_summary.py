@@ -1,0 +1,224 @@
+"""Tests of upscale.summary on small hand-built fields."""
+
+import json
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from upscale.checks.summary import field_summary
+from upscale.core.heterogeneity import coefficient_of_variation, dykstra_parsons, lorenz
+from upscale.errors import InputError
+from upscale.io.schema import fine_dataset
+from upscale.io.validation import validate
+from upscale.report.text import format_summary
+
+NX, NY, NZ = 4, 3, 5
+
+
+def inputs(seed=3):
+    rng = np.random.default_rng(seed)
+    shape = (NX, NY, NZ)
+    dx = np.array([10.0, 20.0, 15.0, 5.0])
+    dy = np.array([8.0, 12.0, 30.0])
+    dz = rng.uniform(0.5, 3.0, shape)
+    dz[0, 0, 1] = 0.0  # pinched cells
+    dz[2, 1, 3] = 0.0
+    dz[3, 2, 0] = 0.0
+    active = np.ones(shape, dtype=np.int8)
+    active[1, 1, 1] = 0  # flagged inactive, not pinched
+    active[0, 2, 4] = 0
+    active[0, 0, 1] = 0  # pinched and flagged
+    kx = np.exp(rng.normal(4.0, 1.0, shape))
+    return dict(kx=kx, ky=0.8 * kx, kz=np.exp(rng.normal(1.0, 1.5, shape)),
+                porosity=rng.uniform(0.05, 0.3, shape), ntg=rng.uniform(0.4, 1.0, shape),
+                dx=dx, dy=dy, dz=dz, active=active)
+
+
+def field(**overrides):
+    values = {**inputs(), **overrides}
+    return validate(fine_dataset(**values)), values
+
+
+def test_counts_and_sizes():
+    ds, v = field()
+    s = field_summary(ds)
+    assert s["shape"] == [NX, NY, NZ]
+    assert s["cells"] == NX * NY * NZ
+    assert s["pinched_cells"] == 3
+    # By hand: (0, 0, 1) and (2, 1, 3) have active cells above and below; (3, 2, 0) is on top.
+    assert s["pinched_between_active"] == 2
+    expected_active = NX * NY * NZ - 3 - 2  # 3 pinched (one also flagged) + 2 flagged only
+    assert s["active_cells"] == expected_active
+    sizes = s["sizes"]
+    assert sizes["dx"] == {"min": 5.0, "max": 20.0}
+    assert sizes["dy"] == {"min": 8.0, "max": 30.0}
+    assert sizes["dz"]["min"] == 0.0
+    assert sizes["dz"]["max"] == pytest.approx(v["dz"].max())
+    assert sizes["dz_min_positive"] == pytest.approx(v["dz"][v["dz"] > 0].min())
+    assert sizes["length_x"] == pytest.approx(50.0)
+    assert sizes["length_y"] == pytest.approx(50.0)
+    column = v["dz"].sum(axis=2)
+    assert sizes["thickness"]["min"] == pytest.approx(column.min())
+    assert sizes["thickness"]["max"] == pytest.approx(column.max())
+
+
+def test_volumes_computed_independently():
+    ds, v = field()
+    s = field_summary(ds)
+    pore = bulk = active_bulk = 0.0
+    for i in range(NX):
+        for j in range(NY):
+            for k in range(NZ):
+                cell = v["dx"][i] * v["dy"][j] * v["dz"][i, j, k]
+                bulk += cell
+                if v["active"][i, j, k] and v["dz"][i, j, k] > 0:
+                    active_bulk += cell
+                    pore += v["porosity"][i, j, k] * v["ntg"][i, j, k] * cell
+    assert s["volumes"]["pore"] == pytest.approx(pore, rel=1e-12)
+    assert s["volumes"]["bulk"] == pytest.approx(bulk, rel=1e-12)
+    assert s["volumes"]["active_bulk"] == pytest.approx(active_bulk, rel=1e-12)
+
+
+def test_cell_statistics_match_numpy():
+    ds, v = field()
+    s = field_summary(ds)
+    mask = (v["active"] == 1) & (v["dz"] > 0)
+    for name in ("kx", "ky", "kz", "porosity", "ntg"):
+        values = v[name][mask]
+        entry = s["values"][name]
+        p10, p50, p90 = np.percentile(values, [10, 50, 90])
+        assert entry["p10"] == pytest.approx(p10, rel=1e-12), name
+        assert entry["p50"] == pytest.approx(p50, rel=1e-12), name
+        assert entry["p90"] == pytest.approx(p90, rel=1e-12), name
+        assert entry["min"] == pytest.approx(values.min(), rel=1e-12), name
+        assert entry["max"] == pytest.approx(values.max(), rel=1e-12), name
+        assert entry["mean"] == pytest.approx(values.mean(), rel=1e-12), name
+    assert s["values"]["kx"]["units"] == "mD"
+
+
+def test_heterogeneity_uses_flow_permeability_and_bulk_weights():
+    ds, v = field()
+    s = field_summary(ds)
+    mask = (v["active"] == 1) & (v["dz"] > 0)
+    bulk = (v["dx"][:, None, None] * v["dy"][None, :, None] * v["dz"])[mask]
+    storage = (v["porosity"] * v["ntg"])[mask]
+    flow = {"x": (v["kx"] * v["ntg"])[mask], "y": (v["ky"] * v["ntg"])[mask], "z": v["kz"][mask]}
+    for axis, k in flow.items():
+        entry = s["heterogeneity"][axis]
+        assert entry["coefficient_of_variation"] == pytest.approx(coefficient_of_variation(k, bulk)), axis
+        assert entry["dykstra_parsons"] == pytest.approx(dykstra_parsons(k, bulk)), axis
+        assert entry["lorenz"] == pytest.approx(lorenz(k, storage, v["dz"][mask])), axis
+        assert 0 < entry["lorenz"] < 1
+    # ky = 0.8 kx everywhere: the dimensionless measures must agree between x and y.
+    for key in ("coefficient_of_variation", "dykstra_parsons", "lorenz"):
+        assert s["heterogeneity"]["x"][key] == pytest.approx(s["heterogeneity"]["y"][key], rel=1e-9)
+
+
+def test_homogeneous_net_field_has_no_horizontal_heterogeneity():
+    # Uniform net properties while net-to-gross varies. Horizontally kx*ntg and the storage
+    # porosity*ntg scale alike, so k / porosity is uniform: Lorenz 0 in x and y. Vertically
+    # kz is the cell's own value (not scaled by ntg), so kz / (porosity*ntg) varies: Lorenz > 0.
+    shape = (NX, NY, NZ)
+    ntg = np.random.default_rng(1).uniform(0.3, 1.0, shape)
+    ds, _ = field(kx=np.full(shape, 100.0), ky=np.full(shape, 100.0), kz=np.full(shape, 10.0),
+                  porosity=np.full(shape, 0.2), ntg=ntg)
+    h = field_summary(ds)["heterogeneity"]
+    assert h["x"]["lorenz"] == pytest.approx(0.0, abs=1e-12)
+    assert h["y"]["lorenz"] == pytest.approx(0.0, abs=1e-12)
+    assert h["z"]["lorenz"] > 0.05
+    assert h["z"]["coefficient_of_variation"] == 0.0
+    assert h["z"]["dykstra_parsons"] == 0.0
+    assert h["x"]["coefficient_of_variation"] > 0.05  # kx*ntg does vary
+    assert h["x"]["dykstra_parsons"] > 0.05
+
+
+def test_layered_column_lorenz_by_hand():
+    # One column of two equal layers, k 300 and 100, equal porosity: Lorenz 0.25 (see
+    # test_heterogeneity.test_lorenz_by_hand); DP with 2 equal weights: k50 = 200,
+    # k15.9 = 100, V = 0.5.
+    k = np.array([300.0, 100.0]).reshape(1, 1, 2)
+    ds = validate(fine_dataset(kx=k, ky=k, kz=k, porosity=np.full(k.shape, 0.2),
+                               dx=[50.0], dy=[50.0], dz=[2.0, 2.0]))
+    s = field_summary(ds)
+    assert s["heterogeneity"]["x"]["lorenz"] == pytest.approx(0.25, rel=1e-12)
+    assert s["heterogeneity"]["x"]["dykstra_parsons"] == pytest.approx(0.5, rel=1e-12)
+    assert s["heterogeneity"]["x"]["coefficient_of_variation"] == pytest.approx(0.5, rel=1e-12)
+
+
+def test_transmissibility_statistics_when_present():
+    ds, _ = field()
+    assert field_summary(ds)["transmissibility"] == {}
+    tx = np.random.default_rng(5).uniform(1.0, 9.0, (NX + 1, NY, NZ))
+    tx[0] = np.nan  # boundary faces without a value
+    mult = np.full((NX + 1, NY, NZ), 0.5)
+    tz = np.arange(NX * NY * (NZ + 1), dtype=float).reshape(NX, NY, NZ + 1)
+    raw = fine_dataset(**inputs())
+    raw["tx"] = xr.Variable(("x_face", "y", "z"), tx, {"units": "m3"})
+    raw["tx_multiplier"] = xr.Variable(("x_face", "y", "z"), mult)
+    raw["tz"] = xr.Variable(("x", "y", "z_face"), tz)
+    raw["unrelated"] = xr.Variable(("x_face", "y", "z"), mult)
+    s = field_summary(validate(raw))
+    t = s["transmissibility"]
+    assert list(t) == ["tx", "tx_multiplier", "tz"]
+    finite = tx[np.isfinite(tx)]
+    assert t["tx"]["count"] == finite.size
+    assert t["tx"]["min"] == pytest.approx(finite.min())
+    assert t["tx"]["max"] == pytest.approx(finite.max())
+    assert t["tx"]["mean"] == pytest.approx(finite.mean())
+    assert t["tx_multiplier"]["mean"] == 0.5
+    assert t["tz"]["max"] == tz.max() and t["tz"]["min"] == 0.0
+    text = format_summary(s)
+    assert "tx_multiplier" in text and "tz" in text and "unrelated" not in text
+
+
+def test_summary_is_plain_json():
+    ds, _ = field()
+    s = field_summary(ds)
+
+    def walk(value):
+        if isinstance(value, dict):
+            assert all(isinstance(key, str) for key in value)
+            for item in value.values():
+                walk(item)
+        elif isinstance(value, list):
+            for item in value:
+                walk(item)
+        else:
+            assert type(value) in (int, float, str), (value, type(value))
+
+    walk(s)
+    assert json.loads(json.dumps(s))["active_cells"] == s["active_cells"]
+
+
+def test_format_summary():
+    ds, _ = field()
+    s = field_summary(ds)
+    text = format_summary(s)
+    assert isinstance(text, str)
+    for word in ("kx", "ky", "kz", "porosity", "ntg", "min", "p10", "p50", "p90", "max", "mean",
+                 "CV", "Dykstra-Parsons", "Lorenz", "pinched"):
+        assert word in text, word
+    assert f"{NX} x {NY} x {NZ}" in text
+    assert f"{s['active_cells']} active" in text
+    assert "2 of them between active cells of their column" in text
+    clear = format_summary({**s, "pinched_between_active": 0})
+    assert "pinched (dz = 0)" in clear and "between active cells" not in clear
+    assert f"{s['volumes']['pore']:.4g}" in text
+    # One row per variable, with its six statistics in order.
+    row = next(line for line in text.splitlines() if line.startswith("porosity"))
+    numbers = [float(x) for x in row.split()[2:]]
+    expected = [s["values"]["porosity"][k] for k in ("min", "p10", "p50", "p90", "max", "mean")]
+    assert numbers == pytest.approx(expected, rel=1e-3)
+    rows = {line.split()[0]: line for line in text.splitlines() if line.split()}
+    for axis in "xyz":
+        values = [float(x) for x in rows[axis].split()[2:]]
+        h = s["heterogeneity"][axis]
+        assert values == pytest.approx([h["coefficient_of_variation"], h["dykstra_parsons"], h["lorenz"]],
+                                       rel=1e-3)
+
+
+def test_unnormalised_field_is_refused():
+    raw = fine_dataset(**{k: v for k, v in inputs().items() if k not in ("ntg", "active")})
+    with pytest.raises(InputError, match="validate"):
+        field_summary(raw)

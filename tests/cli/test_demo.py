@@ -1,0 +1,59 @@
+"""The README's two setup commands and the demo they run."""
+
+import json
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import xarray as xr
+
+ROOT = Path(__file__).resolve().parents[2]
+
+
+def _readme_commands():
+    text = (ROOT / "README.md").read_text()
+    setup = text.split("## Setup on a fresh machine", 1)[1].split("\n## ", 1)[0]
+    return re.findall(r"```\n(.+?)\n```", setup)
+
+
+def test_readme_gives_exactly_two_setup_commands_and_ci_runs_the_test_one():
+    commands = _readme_commands()
+    assert len(commands) == 2
+    demo, tests = commands
+    assert demo.endswith("upscale demo")
+    assert "pytest" in tests
+    assert tests in (ROOT / ".ci" / "run").read_text().splitlines()
+
+
+def test_demo_command_runs_end_to_end(tmp_path):
+    # The demo part of the README command, run as the console entry point would.
+    done = subprocess.run([sys.executable, "-m", "upscale.cli", "demo", "--dir", str(tmp_path)],
+                          capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr
+    coarse = xr.open_dataset(tmp_path / "fields" / "demo_coarse.nc")
+    fine = xr.open_dataset(tmp_path / "fields" / "demo.nc")
+    assert coarse.attrs["method"] == "flow"
+    # pore volume conserved exactly (to round-off) from fine to coarse
+    fine_pv = float((fine.porosity * fine.ntg * fine.dx * fine.dy * fine.dz).sum())
+    assert abs(float(coarse.pore_volume.sum()) - fine_pv) <= 1e-9 * fine_pv
+    static = xr.open_dataset(tmp_path / "fields" / "demo_coarse_arithmetic.nc")
+    assert float(static.tz_multiplier.min()) < 0.1  # cemented streaks hidden by arithmetic kz
+    assert "tz_multiplier" in coarse
+    summary = (tmp_path / "reports" / "demo" / "summary.txt").read_text()
+    assert "Caution" in summary and "qualified engineers" in summary
+    listed = [line.split(maxsplit=1)[1] for line in done.stdout.splitlines() if line.startswith("  ")]
+    assert len(listed) == 8 and all(Path(p).exists() for p in listed)
+    # The demo ends with the full report and prints where it is.
+    report = tmp_path / "reports" / "demo" / "index.html"
+    assert done.stdout.splitlines()[-1].startswith(f"report: {report}")
+    page = report.read_text()
+    assert page.count("<img") >= 8 and "qualified" in page
+    metrics = json.loads((tmp_path / "reports" / "demo" / "metrics.json").read_text())
+    for axis in "xyz":
+        g = metrics["global"][axis]
+        assert g["fine_k"] > 0 and g["fine_residual"] <= 1e-10
+        assert g["relative_error"] == pytest.approx((g["coarse_k"] - g["fine_k"]) / g["fine_k"])
+    assert metrics["transient"]["fine"]["balance_error"] < 1e-6
+    assert metrics["multipliers"]["z"]["faces"] > 0

@@ -1,0 +1,266 @@
+"""Tests of upscale.transient: slightly compressible single-phase drainage of fine and coarse
+models (implicit Euler, two-point flux)."""
+
+import json
+import math
+
+import numpy as np
+import pytest
+from helpers import lognormal
+
+from upscale.checks.transient import coarse_system, transient_check
+from upscale.core.transient import TransientSystem, projected_guess, simulate, time_grid, time_scale, well_factors
+from upscale.core.units import METRIC_TRANSMISSIBILITY
+from upscale.errors import InputError
+from upscale.io.schema import arrays, fine_dataset
+from upscale.io.validation import validate
+from upscale.scale.coarsen import coarsen
+
+
+def slab(axis: int, n: int = 200, length: float = 100.0, k: float = 50.0, porosity: float = 0.25):
+    """A homogeneous slab of ``n`` cells along ``axis``, one cell across (5 m by 2 m)."""
+    shape = [1, 1, 1]
+    shape[axis] = n
+    sizes = [np.array([5.0]), np.array([2.0]), np.array([3.0])]
+    sizes[axis] = np.full(n, length / n)
+    full = np.full(shape, k)
+    return fine_dataset(full, full.copy(), full.copy(), np.full(shape, porosity), *sizes)
+
+
+def drained_fraction_series(t, diffusivity, length, terms=400):
+    """Fraction drained of a slab with one face held at the drainage value, the other sealed:
+    M(t)/M_inf = 1 - sum_n 8 / ((2n+1)^2 pi^2) exp(-(2n+1)^2 pi^2 D t / (4 L^2)).
+    Carslaw & Jaeger (1959), Conduction of Heat in Solids, 2nd ed., section 3.3 (from memory)."""
+    m = (2 * np.arange(terms) + 1.0)[:, None] ** 2 * np.pi ** 2
+    return 1.0 - np.sum(8.0 / m * np.exp(-m * diffusivity * np.asarray(t)[None, :] / (4.0 * length ** 2)), axis=0)
+
+
+@pytest.mark.parametrize("axis, face", [(0, "x-"), (0, "x+"), (1, "y+"), (2, "z-")])
+def test_slab_drainage_matches_series_solution(axis, face):
+    k, porosity, viscosity, ct, length = 50.0, 0.25, 2.5, 3e-5, 100.0
+    cells = arrays(validate(slab(axis, length=length, k=k, porosity=porosity)))
+    system = TransientSystem.from_fine(cells, drainage="face", face=face)
+    # Diffusivity D = k / (phi mu c_t): with k in mD, mu in cP, c_t in 1/bar,
+    # D [m2/day] = C k / (phi mu c_t), C = 1 mD * 1 bar / 1 cP * 1 day in m2
+    # = 9.869233e-16 * 1e5 / 1e-3 * 86400 = 0.008527 = upscale.units.METRIC_TRANSMISSIBILITY.
+    assert METRIC_TRANSMISSIBILITY == pytest.approx(0.008527, rel=1e-4)
+    diffusivity = METRIC_TRANSMISSIBILITY * k / (porosity * viscosity * ct)
+    t_d = length ** 2 / diffusivity
+    # 200 cells and 32 steps per doubling of time (dt/t <= 1/16): measured discretisation
+    # error about 0.6 % over 1e-3..2 diffusion times, mostly implicit Euler's first-order
+    # time error (8 steps per doubling gives about 2 %).
+    times = time_grid(1e-3 * t_d, 2.0 * t_d, steps_per_doubling=32)
+    result = simulate(system, times, p_initial=250.0, p_drain=120.0, compressibility=ct, viscosity=viscosity)
+    drainable = cells.pore_volume.sum() * ct * (250.0 - 120.0)
+    assert result["drainable"] == pytest.approx(drainable, rel=1e-12)
+    fraction = result["cumulative"] / drainable
+    exact = drained_fraction_series(times, diffusivity, length)  # Carslaw & Jaeger (1959), 3.3
+    late = times >= 1e-3 * t_d * (1 - 1e-12)
+    assert np.max(np.abs(fraction[late] - exact[late]) / exact[late]) < 0.01
+    assert exact[late][0] < 0.05 and exact[-1] > 0.99  # the range covers most of the drainage
+
+
+def homogeneous(shape=(24, 12, 6)):
+    nx, ny, nz = shape
+    return fine_dataset(np.full(shape, 100.0), np.full(shape, 100.0), np.full(shape, 10.0),
+                        np.full(shape, 0.2), np.full(nx, 10.0), np.full(ny, 10.0), np.full(nz, 2.0),
+                        ntg=np.full(shape, 0.8))
+
+
+def test_homogeneous_fine_and_coarse_agree_at_late_time():
+    fine = homogeneous()
+    coarse = coarsen(fine, ratio=(4, 3, 2), method="arithmetic")
+    result = transient_check(fine, coarse, drainage="face", face="x-")
+    json.dumps(result)  # JSON-ready
+    assert result["pore_volume_relative_difference"] == pytest.approx(0.0, abs=1e-12)
+    assert result["fine"]["pore_volume"] == pytest.approx(float(arrays(validate(fine)).pore_volume.sum()),
+                                                          rel=1e-12)
+    times = np.array(result["times"])
+    scale = result["time_scale"]["time_scale_days"]
+    # 240 m along x, phi_eff = 0.16, k_eff = 80 mD: t_D = L^2 phi mu c_t / (C k)
+    assert scale == pytest.approx(240.0 ** 2 * 0.16 * 1.0 * 1e-4 / (METRIC_TRANSMISSIBILITY * 80.0), rel=1e-12)
+    assert times[-1] >= 3.0 * scale and times[0] <= 1e-3 * scale
+    assert result["fine"]["drained_fraction_end"] > 0.99
+    error = np.array(result["cumulative_relative_error"], dtype=float)
+    assert np.all(np.abs(error[times >= scale]) < 0.01)
+    assert abs(result["final_cumulative_relative_error"]) < 1e-3
+    # early on the coarse cells (40 m) are far longer than the drained zone: they must differ
+    assert abs(error[0]) > 0.05
+
+
+def test_field_unit_coarse_file_drains_like_metric():
+    fine = homogeneous((12, 6, 4))
+    metric = coarsen(fine, ratio=(3, 2, 2), method="arithmetic", units="metric")
+    field = coarsen(fine, ratio=(3, 2, 2), method="arithmetic", units="field")
+    assert not np.allclose(field["tx"].values, metric["tx"].values)
+    a = transient_check(fine, metric, drainage="face", face="y-")
+    b = transient_check(fine, field, drainage="face", face="y-")
+    np.testing.assert_allclose(b["coarse"]["cumulative"], a["coarse"]["cumulative"], rtol=1e-9)
+    np.testing.assert_allclose(b["coarse"]["rate"], a["coarse"]["rate"], rtol=1e-9)
+
+
+def heterogeneous(shape=(8, 7, 5), seed=3):
+    """Lognormal field with an inactive layer slice, a zero-porosity cell and a pocket sealed
+    off by inactive cells."""
+    rng = np.random.default_rng(seed)
+    k = 100.0 * lognormal(shape, 1.0, seed)
+    porosity = np.clip(rng.normal(0.2, 0.04, shape), 0.05, 0.3)
+    porosity[2, 3, 1] = 0.0
+    active = np.ones(shape, dtype=np.int8)
+    active[3, :, 2] = 0
+    active[6:, :2, :] = 0
+    active[7, 0, :] = 1  # a column pocket in the corner, cut off from the rest
+    nx, ny, nz = shape
+    return fine_dataset(k, k * 0.7, k / 10.0, porosity, np.full(nx, 15.0), np.linspace(8.0, 12.0, ny),
+                        np.linspace(1.0, 3.0, nz), ntg=np.full(shape, 0.85), active=active)
+
+
+@pytest.mark.parametrize("model, drainage", [("fine", "face"), ("fine", "well"), ("coarse", "face"),
+                                             ("coarse", "well")])
+def test_cumulative_equals_depletion(model, drainage):
+    fine = validate(heterogeneous())
+    cells = arrays(fine)
+    if model == "fine":
+        system = TransientSystem.from_fine(cells, drainage=drainage, face="y+", column=(2, 4))
+    else:
+        coarse = coarsen(fine, ratio=(2, 2, 2), method="flow")
+        system = coarse_system(coarse, drainage=drainage, face="y+", column=(2, 4))
+    p0, pw, ct = 180.0, 90.0, 2e-4
+    scale = time_scale(cells, drainage, "y+", (2, 4), ct, 1.3, system.drainage_factor)["time_scale_days"]
+    times = time_grid(1e-3 * scale, 3 * scale, steps_per_doubling=8)
+    result = simulate(system, times, p0, pw, compressibility=ct, viscosity=1.3, keep_pressures=True)
+    pv = system.pore_volume
+    # Discrete identity of implicit Euler: the summed cell equations leave only the drainage
+    # flux, so sum(q dt) = sum PV c_t (p_initial - p) at every time.
+    known = np.isfinite(result["pressures"])
+    depletion = np.sum(np.where(known, pv * ct * (p0 - result["pressures"]), 0.0), axis=(1, 2, 3))
+    assert np.all(known[:, pv > 0])  # every cell holding fluid has a pressure
+    assert np.max(np.abs(result["cumulative"] - depletion)) <= 1e-10 * depletion[-1]
+    steps = np.diff(times, prepend=0.0)
+    np.testing.assert_allclose(np.cumsum(result["rate"] * steps), result["cumulative"], rtol=1e-10)
+    assert result["pore_volume"] == pytest.approx(pv.sum(), rel=1e-14)
+    if model == "fine":  # the sealed pocket (7, 0, :) never drains
+        np.testing.assert_allclose(result["pressure"][7, 0, :], p0, rtol=1e-12)
+        assert result["drainable"] < pv.sum() * ct * (p0 - pw)
+    assert result["cumulative"][-1] > 0.5 * result["drainable"]
+
+
+def test_well_drains_monotonically():
+    fine = validate(heterogeneous(seed=5))
+    cells = arrays(fine)
+    system = TransientSystem.from_fine(cells, drainage="well", column=(4, 3))
+    factors = system.drain_t[4, 3, :]
+    assert np.all(factors[cells.active[4, 3, :]] > 0) and np.count_nonzero(system.drain_t) == cells.active[4, 3].sum()
+    scale = time_scale(cells, "well", column=(4, 3), connection_factor=system.drainage_factor)
+    times = time_grid(1e-3 * scale["time_scale_days"], 3.0 * scale["time_scale_days"], steps_per_doubling=8)
+    result = simulate(system, times, 200.0, 100.0, keep_pressures=True)
+    rate, cumulative = result["rate"], result["cumulative"]
+    assert np.all(rate > 0)
+    assert np.all(np.diff(rate) < 0)
+    assert np.all(np.diff(cumulative) > 0)
+    p = result["pressures"][:, cells.active]
+    assert np.all(np.diff(p, axis=0) <= 1e-9)  # no cell's pressure rises
+    assert np.all((p >= 100.0 - 1e-9) & (p <= 200.0 + 1e-9))
+    # the lowest pressure at the end is in the well column
+    assert np.nanmin(result["pressure"]) == pytest.approx(np.nanmin(result["pressure"][4, 3, :]))
+
+    coarse = coarsen(fine, ratio=(2, 2, 1), method="flow")
+    check = transient_check(fine, coarse, drainage="well", column=(4, 3))
+    json.dumps(check)
+    assert check["drainage"]["coarse_column"] == [2, 1]
+    assert all(v > 0 for v in check["coarse"]["rate"])
+    assert np.all(np.diff(check["coarse"]["rate"]) < 0)
+    assert check["fine"]["drained_fraction_end"] > 0.7
+
+
+def test_malformed_fine_shape_attribute_is_refused_by_name():
+    coarse = coarsen(validate(heterogeneous(seed=5)), ratio=(2, 2, 1), method="arithmetic")
+    coarse.attrs["fine_shape"] = "8 x 7"
+    with pytest.raises(InputError, match="'fine_shape' is '8 x 7'"):
+        coarse_system(coarse, drainage="well", column=(4, 3))
+
+
+def test_well_factor_of_a_square_isotropic_cell():
+    # Peaceman (1978), SPE Journal 18(3) (from memory): r_e ~ 0.2 dx for a square cell;
+    # the anisotropic form (Peaceman 1983) gives 0.28 / sqrt(2) dx = 0.198 dx.
+    dx, dz, k, rw = 20.0, 3.0, 150.0, 0.1
+    t = well_factors(np.array([k]), np.array([k]), dx, dx, np.array([dz]), rw)
+    expected = METRIC_TRANSMISSIBILITY * 2 * math.pi * k * dz / math.log(0.28 / math.sqrt(2) * dx / rw)
+    assert t[0] == pytest.approx(expected, rel=1e-12)
+    assert 0.28 / math.sqrt(2) == pytest.approx(0.2, abs=0.0025)
+    # kx = 4 ky on a 2:1 cell: in coordinates x' = x (k/kx)^(1/2), y' = y (k/ky)^(1/2) with
+    # k = sqrt(kx ky) the cell is a square of side sqrt(2) dx, isotropic, and the well an
+    # ellipse of equivalent radius r_w (1/2) ((ky/kx)^(1/4) + (kx/ky)^(1/4)) (Peaceman 1983,
+    # SPE Journal 23(3), from memory)
+    kx, ky = 4 * k, k
+    kbar = math.sqrt(kx * ky)
+    side = 2 * dx * math.sqrt(kbar / kx)
+    assert side == pytest.approx(dx * math.sqrt(ky / kbar) * math.sqrt(kbar / ky) * math.sqrt(2))
+    r_e = 0.28 / math.sqrt(2) * side
+    r_w = rw * 0.5 * ((ky / kx) ** 0.25 + (kx / ky) ** 0.25)
+    t_aniso = well_factors(np.array([kx]), np.array([ky]), 2 * dx, dx, np.array([dz]), rw)
+    assert t_aniso[0] == pytest.approx(METRIC_TRANSMISSIBILITY * 2 * math.pi * kbar * dz
+                                       / math.log(r_e / r_w), rel=1e-12)
+    with pytest.raises(InputError, match="well radius"):
+        well_factors(np.array([k]), np.array([k]), 0.4, 0.4, np.array([dz]), 0.1)
+
+
+def test_time_grid_doubles_steps_and_reuses_factorisations():
+    times = time_grid(1.0, 100.0, steps_per_doubling=8)
+    steps = np.diff(times, prepend=0.0)
+    assert times[7] == pytest.approx(1.0) and times[-1] >= 100.0 and times[-1] < 200.0
+    assert len(np.unique(np.round(steps / steps[0], 6))) == 1 + math.ceil(math.log2(100.0))
+    cells = arrays(validate(slab(0, n=30)))
+    result = simulate(TransientSystem.from_fine(cells), times)
+    assert result["solver"]["factorisations"] == 1 + math.ceil(math.log2(100.0))
+
+
+def test_bad_input_is_refused():
+    cells = arrays(validate(slab(0, n=10)))
+    with pytest.raises(InputError, match="unknown face"):
+        TransientSystem.from_fine(cells, face="w-")
+    with pytest.raises(InputError, match="outside"):
+        TransientSystem.from_fine(cells, drainage="well", column=(10, 0))
+    with pytest.raises(InputError, match="drainage"):
+        TransientSystem.from_fine(cells, drainage="spring")
+    system = TransientSystem.from_fine(cells)
+    with pytest.raises(InputError, match="increasing"):
+        simulate(system, [1.0, 0.5])
+    with pytest.raises(InputError, match="viscosity"):
+        simulate(system, [1.0], viscosity=0.0)
+    fine = homogeneous((6, 4, 2))
+    coarse = coarsen(homogeneous((8, 4, 2)), ratio=(2, 2, 1), method="arithmetic")
+    with pytest.raises(InputError, match="tile"):
+        transient_check(fine, coarse)
+
+
+def test_iterative_solver_agrees_with_direct():
+    cells = arrays(validate(heterogeneous(seed=7)))
+    system = TransientSystem.from_fine(cells, drainage="face", face="x+")
+    times = time_grid(0.01, 20.0, steps_per_doubling=4)
+    direct = simulate(system, times, direct_limit=10 ** 9)
+    iterative = simulate(system, times, direct_limit=0)  # pyamg smoothed-aggregation CG
+    assert direct["solver"]["method"] == "direct" and iterative["solver"]["method"] == "amg-cg"
+    np.testing.assert_allclose(iterative["cumulative"], direct["cumulative"], rtol=1e-8)
+    assert iterative["balance_error"] < 1e-8
+
+
+def test_projected_guess_is_the_best_approximation_in_the_span():
+    # Galerkin projection: with the exact solution in the span it is recovered; otherwise the
+    # A-norm error is no larger than from any vector of the span (Fischer 1998, from memory).
+    rng = np.random.default_rng(4)
+    M = rng.normal(size=(40, 40))
+    A = M @ M.T + 40 * np.eye(40)
+    x = rng.normal(size=40)
+    b = A @ x
+    others = [rng.normal(size=40) for _ in range(3)]
+    np.testing.assert_allclose(projected_guess(A, b, [others[0], x, others[1], 2 * x]), x, rtol=1e-10)
+    guess = projected_guess(A, b, others)
+
+    def energy(v):
+        return float((v - x) @ A @ (v - x))
+
+    for _ in range(20):
+        trial = sum(c * v for c, v in zip(rng.normal(size=3), others))
+        assert energy(guess) <= energy(trial) + 1e-9
+    assert np.array_equal(projected_guess(A, b, [np.zeros(40)]), np.zeros(40))

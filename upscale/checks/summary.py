@@ -1,0 +1,155 @@
+"""A summary of a normalised field (``upscale inspect``): counts, sizes, cell statistics,
+volumes, heterogeneity.
+
+:func:`field_summary` returns a plain dict of Python ints, floats, strings and lists
+(ready for ``json.dumps``; undefined statistics are ``float('nan')``).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import xarray as xr
+
+from ..core.grid import AXES
+from ..core.heterogeneity import coefficient_of_variation, dykstra_parsons, lorenz
+from ..errors import InputError
+from ..io.schema import CELL_VALUES, arrays
+
+PERCENTILES = (10, 50, 90)
+
+
+STATISTICS = ("min", "p10", "p50", "p90", "max", "mean")
+
+
+UNITS = {"kx": "mD", "ky": "mD", "kz": "mD", "porosity": "1", "ntg": "1"}
+
+
+FACE_DIMS = ("x_face", "y_face", "z_face")
+
+
+TRANSMISSIBILITY = ("tx", "ty", "tz")
+
+
+HETEROGENEITY = (("coefficient_of_variation", "CV"), ("dykstra_parsons", "Dykstra-Parsons"),
+                 ("lorenz", "Lorenz"))
+
+
+FLOW_PERMEABILITY = {"x": "kx*ntg", "y": "ky*ntg", "z": "kz"}
+
+
+def _range(values: np.ndarray) -> dict:
+    return {"min": float(values.min()), "max": float(values.max())}
+
+
+def _cell_statistics(values: np.ndarray) -> dict:
+    """min, p10, p50, p90, max, mean of the samples (each counts once; numpy 'linear' percentiles)."""
+    p10, p50, p90 = np.percentile(values, PERCENTILES)
+    return {"min": float(values.min()), "p10": float(p10), "p50": float(p50), "p90": float(p90),
+            "max": float(values.max()), "mean": float(values.mean())}
+
+
+def _is_transmissibility(name: str, variable: xr.DataArray) -> bool:
+    on_faces = any(d in FACE_DIMS for d in variable.dims)
+    return on_faces and (name in TRANSMISSIBILITY or name.startswith(tuple(t + "_" for t in TRANSMISSIBILITY)))
+
+
+def _transmissibility(ds: xr.Dataset) -> dict:
+    """min/max/mean over the finite face values of tx, ty, tz and tx_*, ty_*, tz_* (e.g. multipliers)."""
+    out = {}
+    names = [n for n in ds.data_vars if _is_transmissibility(str(n), ds[n])]
+    for name in sorted(names, key=lambda n: (str(n)[:2], len(str(n)), str(n))):
+        values = np.asarray(ds[name].values, dtype=float).ravel()
+        values = values[np.isfinite(values)]
+        entry = {"dims": [str(d) for d in ds[name].dims], "units": str(ds[name].attrs.get("units", "")),
+                 "count": int(values.size)}
+        if values.size:
+            entry.update(min=float(values.min()), max=float(values.max()), mean=float(values.mean()))
+        else:
+            entry.update(min=math.nan, max=math.nan, mean=math.nan)
+        out[str(name)] = entry
+    return out
+
+
+def _pinched_between_active(dz: np.ndarray, active: np.ndarray) -> int:
+    """Pinched cells (dz = 0) with an active cell above and below them in their column:
+    where a pinch-out connection would join the two (upscale carries no flow across them)."""
+    active = np.asarray(active, dtype=bool)
+    above = np.zeros_like(active)
+    above[:, :, 1:] = np.logical_or.accumulate(active, axis=2)[:, :, :-1]
+    below = np.zeros_like(active)
+    below[:, :, :-1] = np.logical_or.accumulate(active[:, :, ::-1], axis=2)[:, :, ::-1][:, :, 1:]
+    return int(np.count_nonzero((dz == 0) & above & below))
+
+
+def field_summary(ds: xr.Dataset) -> dict:
+    """Summarise a normalised field (from :func:`upscale.field.open_field` or ``validate``).
+
+    Keys: ``shape`` [nx, ny, nz]; ``cells``, ``active_cells``, ``pinched_cells`` (dz == 0,
+    active or not), ``pinched_between_active`` (those with an active cell above and below in
+    their column); ``sizes`` (m): dx, dy, dz min/max over all cells, ``dz_min_positive``,
+    ``length_x`` = sum dx, ``length_y`` = sum dy, and ``thickness`` min/max/mean over columns
+    of the column total sum(dz); ``values``: for kx, ky, kz (mD), porosity, ntg (fractions)
+    the min, p10, p50, p90, max and mean over active cells, each cell counting once (numpy's
+    default linear percentiles); ``volumes`` (m3): ``bulk`` (all cells), ``active_bulk``,
+    ``pore`` (porosity * ntg * bulk over active cells); ``heterogeneity``: for x, y, z the
+    flow permeability kx*ntg, ky*ntg, kz over active cells with coefficient of variation and
+    Dykstra-Parsons weighted by cell bulk volume, and the Lorenz coefficient with h = dz and
+    the cell's pore-volume porosity porosity * ntg (so that net-to-gross alone, which scales
+    flow and storage alike, does not count as heterogeneity); ``transmissibility``: for each
+    face variable tx, ty, tz, tx_*, ty_*, tz_* present, its dims, units, count, min/max/mean
+    over finite values.
+    """
+    missing = [n for n in ("dx", "dy", "dz", *CELL_VALUES, "active") if n not in ds]
+    if missing:
+        raise InputError(f"field summary: missing variable(s) {', '.join(missing)}; "
+                         f"read the field with open_field() or pass it through validate() first")
+    fine = arrays(ds)
+    active = fine.active
+    bulk = fine.bulk_volume
+    column = fine.dz.sum(axis=2)
+    positive_dz = fine.dz[fine.dz > 0]
+
+    summary: dict = {
+        "shape": [int(n) for n in fine.shape],
+        "cells": int(active.size),
+        "active_cells": int(np.count_nonzero(active)),
+        "pinched_cells": int(np.count_nonzero(fine.dz == 0)),
+        "pinched_between_active": _pinched_between_active(fine.dz, active),
+        "sizes": {
+            "units": "m",
+            "dx": _range(fine.dx),
+            "dy": _range(fine.dy),
+            "dz": _range(fine.dz),
+            "dz_min_positive": float(positive_dz.min()) if positive_dz.size else math.nan,
+            "length_x": float(fine.dx.sum()),
+            "length_y": float(fine.dy.sum()),
+            "thickness": {**_range(column), "mean": float(column.mean())},
+        },
+        "values": {},
+        "volumes": {
+            "units": "m3",
+            "bulk": float(bulk.sum()),
+            "active_bulk": float(bulk[active].sum()),
+            "pore": float(fine.pore_volume.sum()),
+        },
+        "heterogeneity": {},
+        "transmissibility": _transmissibility(ds),
+    }
+    for name in CELL_VALUES:
+        values = getattr(fine, name)[active]
+        summary["values"][name] = {"units": UNITS[name], **_cell_statistics(values)}
+
+    weight = bulk[active]
+    storage_porosity = (fine.porosity * fine.ntg)[active]
+    thickness = fine.dz[active]
+    for axis, k in zip(AXES, fine.flow_permeability()):
+        k = k[active]
+        summary["heterogeneity"][axis] = {
+            "permeability": FLOW_PERMEABILITY[axis],
+            "coefficient_of_variation": coefficient_of_variation(k, weight),
+            "dykstra_parsons": dykstra_parsons(k, weight),
+            "lorenz": lorenz(k, storage_porosity, thickness),
+        }
+    return summary

@@ -1,0 +1,208 @@
+"""The transient drainage check of a coarse grid against its fine field (see
+:mod:`upscale.core.transient` for the equations and drainage set-ups).
+
+The coarse model uses the file's ``tx``, ``ty``, ``tz`` (times ``tx_multiplier``... when
+present) converted to metric: T_metric = T_file * C_metric / (C_file * f) with C_file, f
+the constant and metres-to-length factor of the file's units
+(:data:`upscale.core.units.TRANSMISSIBILITY_UNITS`). Pore volumes are the file's
+``pore_volume``.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import xarray as xr
+
+from ..core.grid import AXES
+from ..core.pressure import DIRECT_LIMIT
+from ..core.transient import (
+    CHECK_SOLVE_TOLERANCE,
+    DEFAULT_COMPRESSIBILITY,
+    DEFAULT_P_DRAIN,
+    DEFAULT_P_INITIAL,
+    DEFAULT_SPAN,
+    DEFAULT_VISCOSITY,
+    DEFAULT_WELL_RADIUS,
+    TransientSystem,
+    check_drainage,
+    check_fluid,
+    connection_summary,
+    drainage_face,
+    face_connection,
+    simulate,
+    time_grid,
+    time_scale,
+    well_column,
+    well_factors,
+)
+from ..core.two_point import cell_geometry, half_transmissibility
+from ..core.units import METRIC_TRANSMISSIBILITY
+from ..errors import InputError
+from ..io.coarse_file import coarse_faces, coarse_partition, coarse_units, transmissibility_constant
+from ..io.schema import arrays
+from ..io.validation import validate
+
+
+def coarse_system(coarse: xr.Dataset, drainage: str = "face", face: str = "x-", column=None,
+                fine_shape=None, well_radius: float = DEFAULT_WELL_RADIUS) -> TransientSystem:
+    """The coarse model: the file's face transmissibilities (times multipliers) in metric,
+    its ``pore_volume``, and the drainage connection from the coarse cells' effective
+    permeability and sizes (see the module notes).
+
+    For 'well', ``column`` is the fine (i, j); the coarse column holding it is found from
+    the file's ``x_start``/``x_stop``, ``y_start``/``y_stop``; with ``column`` None, the
+    fine grid centre (fine shape from ``fine_shape`` or the file's ``fine_shape`` attribute).
+    """
+    ds = validate(coarse, where="coarse grid")
+    cells = arrays(ds)
+    drainage = check_drainage(drainage)
+    factor = METRIC_TRANSMISSIBILITY / transmissibility_constant(ds)
+    faces = [factor * t for t in coarse_faces(ds, cells.shape)]
+    if "pore_volume" in ds:
+        pore_volume = np.asarray(ds["pore_volume"].transpose(*AXES).values, dtype=float) * cells.active
+    else:
+        pore_volume = cells.pore_volume
+    k = cells.flow_permeability()
+    description = {"model": "coarse", "drainage": drainage,
+                   "transmissibility_units_in": coarse_units(ds)}
+    if drainage == "face":
+        axis, high = drainage_face(face)
+        volume, lengths = cell_geometry(cells.dx, cells.dy, cells.dz)
+        half = METRIC_TRANSMISSIBILITY * half_transmissibility(k[axis], volume, lengths[axis])
+        drain_t = face_connection(half, axis, high)
+        description["face"] = face
+    else:
+        if fine_shape is None and "fine_shape" in ds.attrs:
+            written = str(ds.attrs["fine_shape"])
+            try:
+                fine_shape = tuple(int(v) for v in written.split())
+            except ValueError:
+                raise InputError(f"coarse grid: attribute 'fine_shape' is {written!r}, not three whole "
+                                 f"numbers") from None
+        edges = coarse_partition(ds, fine_shape).edges
+        i, j = well_column(column, fine_shape or tuple(int(e[-1]) for e in edges))
+        ci = int(np.searchsorted(edges[0], i, side="right") - 1)
+        cj = int(np.searchsorted(edges[1], j, side="right") - 1)
+        drain_t = np.zeros(cells.shape)
+        drain_t[ci, cj, :] = well_factors(k[0][ci, cj], k[1][ci, cj], cells.dx[ci], cells.dy[cj],
+                                          cells.dz[ci, cj], well_radius)
+        description.update(column=[i, j], coarse_column=[ci, cj], well_radius=float(well_radius))
+    system = TransientSystem.from_arrays(pore_volume, faces, drain_t, description)
+    system.description.update(connection_summary(drain_t))
+    return system
+
+
+def _number(value) -> float | None:
+    value = float(value)
+    return value if math.isfinite(value) else None
+
+
+def _relative(a, b):
+    """(a - b) / b elementwise as a list, None where b is 0."""
+    return [None if bb == 0 else _number((aa - bb) / bb) for aa, bb in zip(np.ravel(a), np.ravel(b))]
+
+
+def check_options(coarse: xr.Dataset, fine_shape, drainage: str = "face", face: str = "x-", column=None,
+                  compressibility: float = DEFAULT_COMPRESSIBILITY, viscosity: float = DEFAULT_VISCOSITY,
+                  steps_per_doubling: int = 8, span=DEFAULT_SPAN, **_ignored):
+    """Check the set-up of :func:`transient_check` before any work; InputError if wrong.
+    Returns the well column (i, j) for 'well', else ``column`` unchanged."""
+    drainage = check_drainage(drainage)
+    if drainage == "well":
+        column = well_column(column, fine_shape)
+        coarse_partition(coarse, fine_shape)
+    else:
+        drainage_face(face)
+        coarse_partition(coarse, fine_shape, required=False)
+    check_fluid(compressibility, viscosity)
+    try:
+        first, end = (float(v) for v in span)
+    except (TypeError, ValueError):
+        raise InputError(f"time span must be two numbers (multiples of the time scale), got {span!r}") from None
+    time_grid(first, end, steps_per_doubling)  # raises on a bad span or step count
+    return column
+
+
+def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face", face: str = "x-",
+                    column=None, times=None, p_initial: float = DEFAULT_P_INITIAL,
+                    p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
+                    viscosity: float = DEFAULT_VISCOSITY, well_radius: float = DEFAULT_WELL_RADIUS,
+                    span=DEFAULT_SPAN, steps_per_doubling: int = 8, direct_limit: int = DIRECT_LIMIT,
+                    solve_tolerance: float = CHECK_SOLVE_TOLERANCE) -> dict:
+    """Drain a fine field and its coarse grid the same way and compare; JSON-ready dict.
+
+    drainage 'face' (``face`` 'x-' ... 'z+') or 'well' (fine ``column`` (i, j), the grid
+    centre if None). times: step end times in days; by default :func:`time_grid` from
+    span[0] to span[1] times the fine field's time scale (:func:`time_scale`). Both models
+    use the same time grid (implicit Euler), so the comparison isolates the upscaling error
+    from the time-stepping error. solve_tolerance: relative residual of each step's solve.
+
+    Returns: 'drainage' (set-up, both models' connection factors), 'time_scale' (see
+    :func:`time_scale`), 'times' (days), 'fine' and 'coarse' each with 'rate' (m3/day),
+    'cumulative' (m3), 'drained_fraction_end' (cumulative / drainable at the last time),
+    'pore_volume' (m3), 'balance_error', 'cells', 'solver'; 'cumulative_relative_error' and
+    'rate_relative_error' ((coarse - fine) / fine at each time, None where fine is 0),
+    'final_cumulative_relative_error', 'pore_volume_relative_difference' ((coarse - fine) /
+    fine), and the pressures, compressibility and viscosity used.
+    """
+    fine = validate(fine, where="fine field")
+    coarse = validate(coarse, where="coarse grid")
+    cells = arrays(fine)
+    column = check_options(coarse, cells.shape, drainage, face, column, compressibility, viscosity,
+                           steps_per_doubling)
+    fine_model = TransientSystem.from_fine(cells, drainage, face, column, well_radius)
+    coarse_model = coarse_system(coarse, drainage, face, column, cells.shape, well_radius)
+    scale = time_scale(cells, drainage, face, column, compressibility, viscosity,
+                       fine_model.drainage_factor)
+    if times is None:
+        times = time_grid(span[0] * scale["time_scale_days"], span[1] * scale["time_scale_days"],
+                          steps_per_doubling)
+    runs = {}
+    for name, system in (("fine", fine_model), ("coarse", coarse_model)):
+        result = simulate(system, times, p_initial, p_drain, compressibility, viscosity,
+                          direct_limit=direct_limit, tolerance=solve_tolerance)
+        runs[name] = result
+    f, c = runs["fine"], runs["coarse"]
+
+    def summary(result, system):
+        drainable = result["drainable"]
+        return {
+            "rate": [_number(v) for v in result["rate"]],
+            "cumulative": [_number(v) for v in result["cumulative"]],
+            "drained_fraction_end": _number(result["cumulative"][-1] / drainable) if drainable else None,
+            "pore_volume": _number(result["pore_volume"]),
+            "drainable": _number(drainable),
+            "balance_error": _number(result["balance_error"]),
+            "cells": int(system.size),
+            "solver": {k: (_number(v) if isinstance(v, float) else v) for k, v in result["solver"].items()},
+        }
+
+    pv_f, pv_c = f["pore_volume"], c["pore_volume"]
+    error = _relative(c["cumulative"], f["cumulative"])
+    setup = {"type": drainage}
+    if drainage == "face":
+        setup["face"] = face
+    else:
+        setup.update(column=list(fine_model.description["column"]),
+                     coarse_column=list(coarse_model.description["coarse_column"]),
+                     well_radius=float(well_radius))
+    setup["connection_factor"] = {"fine": _number(fine_model.drainage_factor),
+                                  "coarse": _number(coarse_model.drainage_factor),
+                                  "units": "m3*cP/(day*bar)"}
+    return {
+        "drainage": setup,
+        "p_initial_bar": float(p_initial),
+        "p_drain_bar": float(p_drain),
+        "compressibility_per_bar": float(compressibility),
+        "viscosity_cP": float(viscosity),
+        "time_scale": {k: _number(v) for k, v in scale.items()},
+        "times": [_number(t) for t in np.asarray(times, dtype=float)],
+        "fine": summary(f, fine_model),
+        "coarse": summary(c, coarse_model),
+        "cumulative_relative_error": error,
+        "rate_relative_error": _relative(c["rate"], f["rate"]),
+        "final_cumulative_relative_error": error[-1],
+        "pore_volume_relative_difference": _number((pv_c - pv_f) / pv_f) if pv_f else None,
+    }

@@ -1,0 +1,5 @@
+"""``python -m upscale.cli``: the command line."""
+
+from .main import run
+
+run()

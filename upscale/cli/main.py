@@ -1,0 +1,378 @@
+"""Command line: ``upscale VERB ...``. Exit codes: 0 success, 2 bad usage or input,
+1 internal failure, 130 interrupted."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import math
+import os
+import sys
+import textwrap
+from contextlib import contextmanager
+from pathlib import Path
+
+from ..about import tool_version
+from ..errors import InputError
+
+EXAMPLES = {
+    "coarsen": """\
+        upscale coarsen fields/demo.nc -o fields/demo_coarse.nc --ratio 5 5 5 --method flow --bc sealed
+        upscale coarsen fine.nc -o coarse.nc --ratio 4 4 1 --edges z=0,3,10,20 --method arithmetic,arithmetic,harmonic
+        upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --method flow --bc periodic --border 2 --multipliers
+        upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --memory 2GB --workers 2
+        upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --scheduler tcp://127.0.0.1:8786""",
+    "inspect": "upscale inspect fields/demo.nc",
+    "make-field": """\
+        upscale make-field lognormal -o fields/random.nc --shape 60 220 85 --sigma 2 --correlation 8 8 2 --seed 1
+        upscale make-field layered -o fields/layers.nc --thickness 2 1 3 --permeability 100 1 500
+        upscale make-field channels -o fields/channels.nc --shape 80 60 20 --seed 3
+        upscale make-field demo -o fields/demo.nc""",
+    "demo": "upscale demo            # writes fields/demo*.nc and reports/demo/",
+    "check": "upscale check fields/demo.nc fields/demo_coarse.nc --report reports/demo",
+    "layers": "upscale layers fields/demo.nc --target 10",
+    "bench": """\
+        upscale bench                  # prints timings and ratios side by side
+        upscale bench --whole-model    # also the fine whole-model check (slow)""",
+}
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit 2
+        self.exit(2, f"upscale: error: {message} (see: {self.prog} --help)\n")
+
+
+def _common() -> argparse.ArgumentParser:
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--quiet", action="store_true", help="no progress bars")
+    common.add_argument("--verbose", action="store_true", help="detailed log messages")
+    common.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
+    return common
+
+
+def _add(sub, name: str, help_text: str) -> argparse.ArgumentParser:
+    epilog = "example:\n" + textwrap.indent(textwrap.dedent(EXAMPLES[name]), "  ")
+    return sub.add_parser(name, help=help_text, description=help_text, epilog=epilog, parents=[_common()],
+                          formatter_class=argparse.RawDescriptionHelpFormatter)
+
+
+def _edges_argument(text: str) -> tuple[str, list[int]]:
+    try:
+        axis, values = text.split("=", 1)
+        return axis.strip(), [int(v) for v in values.replace(",", " ").split()]
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"edges must look like z=0,3,10,20, got '{text}'") from None
+
+
+def _add_parallel(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--memory", metavar="SIZE", help="memory budget of the whole run, e.g. 2GB or 800MB "
+                   "(default: half the memory available); a field that does not fit is processed in "
+                   "boxes of whole coarse blocks")
+    p.add_argument("--workers", type=int, metavar="N", help="run the boxes on N local worker processes")
+    p.add_argument("--box", nargs=3, type=int, metavar=("BX", "BY", "BZ"),
+                   help="coarse blocks per box along x, y, z when working in boxes (default: from --memory)")
+    p.add_argument("--scheduler", metavar="ADDRESS", help="run the boxes on a running dask.distributed "
+                   "cluster, e.g. tcp://10.0.0.5:8786 (the workers must see the same file paths; "
+                   "--memory is then the budget of each worker)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="upscale", description="Coarsen fine geomodels for flow simulation and "
+                     "check that the coarse grid still flows like the fine one.")
+    parser.add_argument("--version", action="version", version=f"upscale {tool_version()}")
+    sub = parser.add_subparsers(dest="verb", required=True, parser_class=_Parser)
+
+    p = _add(sub, "coarsen", "coarsen a fine field into a coarse grid file")
+    p.add_argument("fine", help="fine field (NetCDF)")
+    p.add_argument("-o", "--output", required=True, help="coarse grid file to write (NetCDF)")
+    p.add_argument("--ratio", nargs=3, type=int, metavar=("RX", "RY", "RZ"),
+                   help="fine cells per coarse cell along x, y, z (default 1 1 1 where no edges)")
+    p.add_argument("--edges", action="append", type=_edges_argument, default=[], metavar="AXIS=E0,E1,...",
+                   help="fine-index edges of the coarse cells along one axis, e.g. z=0,3,10,20 (repeatable)")
+    p.add_argument("--method", default="flow", help="arithmetic, harmonic, geometric, power or flow; "
+                   "or one per axis: arithmetic,arithmetic,harmonic (default flow)")
+    p.add_argument("--omega", type=float, help="exponent of the power average")
+    p.add_argument("--bc", default="sealed", help="local boundary condition for flow: sealed, periodic, linear")
+    p.add_argument("--border", type=int, default=0, help="border ring of fine cells around each block (flow)")
+    p.add_argument("--multipliers", action="store_true", help="compute flow-based transmissibility multipliers")
+    p.add_argument("--multipliers-csv", metavar="FILE", help="also write all multipliers as CSV (i,j,k,direction,multiplier)")
+    p.add_argument("--units", default="metric", help="transmissibility units: metric or field")
+    _add_parallel(p)
+
+    p = _add(sub, "inspect", "summarise a field file: sizes, value ranges, heterogeneity")
+    p.add_argument("file", help="field or coarse grid (NetCDF)")
+    p.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+    p = _add(sub, "make-field", "write a seeded synthetic field")
+    p.add_argument("kind", choices=("lognormal", "layered", "channels", "demo"))
+    p.add_argument("-o", "--output", required=True, help="file to write (NetCDF)")
+    p.add_argument("--shape", nargs=3, type=int, metavar=("NX", "NY", "NZ"))
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--sigma", type=float, default=2.0, help="std of ln k (lognormal)")
+    p.add_argument("--correlation", nargs=3, type=float, default=(8, 8, 2), metavar=("LX", "LY", "LZ"),
+                   help="correlation lengths in cells (lognormal)")
+    p.add_argument("--kv-kh", type=float, default=0.1, help="vertical to horizontal permeability ratio")
+    p.add_argument("--cell", nargs=3, type=float, default=(20.0, 10.0, 2.0), metavar=("DX", "DY", "DZ"),
+                   help="cell size in m (lognormal)")
+    p.add_argument("--thickness", nargs="+", type=float, help="layer thicknesses in m (layered)")
+    p.add_argument("--permeability", nargs="+", type=float, help="layer permeabilities in mD (layered)")
+    p.add_argument("--channels", type=int, default=6, help="number of channels (channels)")
+    p.add_argument("--in-chunks", action="store_true", help="lognormal of any size, made and written chunk by "
+                   "chunk within --memory (another generator: the same seed gives another field)")
+    p.add_argument("--memory", metavar="SIZE", help="memory budget, e.g. 2GB (default: half the memory available)")
+
+    p = _add(sub, "demo", "run the whole job on the built-in synthetic sector")
+    p.add_argument("--dir", default=".", help="folder that receives fields/ and reports/ (default: here)")
+
+    p = _add(sub, "check", "compare a coarse grid with its fine field by whole-model flow")
+    p.add_argument("fine")
+    p.add_argument("coarse")
+    p.add_argument("--report", help="folder for index.html and metrics.json")
+    p.add_argument("--drainage", choices=("face", "well"), default="face",
+                   help="transient check: drain through a model face or a vertical well (default face)")
+    p.add_argument("--face", default="x-", help="drained face: x-, x+, y-, y+, z- or z+ (default x-)")
+    p.add_argument("--well-column", nargs=2, type=int, metavar=("I", "J"),
+                   help="fine column of the well (default: the grid centre)")
+    p.add_argument("--compressibility", type=float, default=1e-4,
+                   help="total compressibility in 1/bar (default 1e-4)")
+    p.add_argument("--viscosity", type=float, default=1.0, help="viscosity in cP (default 1)")
+    p.add_argument("--steps-per-doubling", type=int, default=8,
+                   help="implicit Euler steps per doubling of time (even, default 8)")
+
+    p = _add(sub, "layers", "judge a grouping of fine layers and propose the best one")
+    p.add_argument("fine")
+    p.add_argument("--target", type=int, required=True, help="number of coarse layers")
+    p.add_argument("--edges", type=lambda t: [int(v) for v in t.replace(",", " ").split()],
+                   help="a grouping to judge, e.g. 0,3,10,20")
+    p.add_argument("--figure", help="PNG file for the layer profile")
+    p.add_argument("--memory", metavar="SIZE", help="memory budget, e.g. 2GB (default: half the memory "
+                   "available); the field is read in slabs along x that fit it")
+
+    p = _add(sub, "bench", "time the upscaling against the plain per-block approach")
+    p.add_argument("--shape", nargs=3, type=int, default=(60, 220, 85), metavar=("NX", "NY", "NZ"))
+    p.add_argument("--sample", type=int, default=300, help="blocks timed with the plain loop")
+    p.add_argument("--whole-model", action="store_true", help="also time the fine whole-model steady check")
+    return parser
+
+
+@contextmanager
+def progress_bar(total: int, label: str, quiet: bool, unit: str = "block"):
+    """A tqdm bar on stderr (off when quiet or not a terminal); yields an update callable."""
+    from tqdm import tqdm
+
+    bar = tqdm(total=total, desc=label, unit=unit, disable=quiet or not sys.stderr.isatty(),
+               file=sys.stderr, leave=False)
+    try:
+        yield bar.update
+    finally:
+        bar.close()
+
+
+def _coarsen(args) -> int:
+    from ..io.coarse_grid import warn_flagged
+    from ..io.reading import open_field
+    from ..io.writing import check_output_path
+    from ..scale.cluster import cluster
+    from ..scale.coarsen import coarsen
+    from ..scale.stream import write
+
+    out = check_output_path(args.output, inputs=(args.fine,))
+    table = check_output_path(args.multipliers_csv, inputs=(args.fine, args.output)) if args.multipliers_csv else None
+    if table and not args.multipliers:
+        raise InputError("--multipliers-csv needs --multipliers")
+    if args.workers is not None and args.scheduler:
+        raise InputError("give --workers (local processes) or --scheduler (a running cluster), not both")
+    options = dict(ratio=args.ratio, edges=dict(args.edges), method=args.method, bc=args.bc, border=args.border,
+                   omega=args.omega, multipliers=args.multipliers, units=args.units)
+    plan = _memory_plan(args)
+    chunked = args.box is not None or plan.chunked(args.fine, args.method, args.multipliers)
+    if chunked:
+        from .._runtime import keep_heap_small
+
+        keep_heap_small()
+    with cluster(workers=args.workers, scheduler=args.scheduler):  # none unless asked for
+        fine = plan.open(args.fine) if chunked else open_field(args.fine)
+        if chunked:
+            from ..scale.boxes import box_count
+
+            coarse = coarsen(fine, memory=plan.box_memory, box=args.box, **options)
+            with progress_bar(box_count(coarse), "boxes", args.quiet, unit="box") as update:
+                write(coarse, out, progress=update)
+            import xarray as xr
+
+            with xr.open_dataset(out) as written:
+                coarse = written.load()
+            warn_flagged(coarse)
+        else:
+            coarse = _coarsen_in_memory(fine, options, args.quiet)
+            write(coarse, out)
+    if table:
+        from ..io.writing import atomic_write, multiplier_csv
+
+        text = multiplier_csv({n: coarse[f"t{n}_multiplier"].values for n in "xyz"})
+        atomic_write(table, lambda tmp: Path(tmp).write_text(text))
+        print(f"wrote {table}")
+    print(f"wrote {out} ({' x '.join(str(coarse.sizes[d]) for d in ('x', 'y', 'z'))} cells, "
+          f"method {coarse.attrs['method']}{', in boxes' if chunked else ''})")
+    return 0
+
+
+def _coarsen_in_memory(fine, options: dict, quiet: bool):
+    """``coarsen`` with a progress bar over the local solves."""
+    import numpy as np
+
+    from ..core.partition import make_partition
+    from ..scale.coarsen import coarsen
+
+    shape = tuple(fine.sizes[d] for d in ("x", "y", "z"))
+    coarse_shape = make_partition(shape, options["ratio"], options["edges"]).shape
+    work = int(np.prod(coarse_shape)) if "flow" in options["method"] else 0
+    if options["multipliers"]:
+        work += sum(int(np.prod(coarse_shape)) * (n - 1) // n for n in coarse_shape)
+    with progress_bar(work, "local solves", quiet) as update:
+        return coarsen(fine, progress=update, **options)
+
+
+def _memory_plan(args):
+    from ..scale.memory import MemoryPlan, parse_memory
+
+    return MemoryPlan(parse_memory(args.memory) if args.memory else None, getattr(args, "workers", None),
+                      bool(getattr(args, "scheduler", None)))
+
+
+def _inspect(args) -> int:
+    from ..checks.summary import field_summary
+    from ..io.reading import open_field
+    from ..report.text import format_summary
+
+    summary = field_summary(open_field(args.file))
+    print(json.dumps(summary, indent=2) if args.json else format_summary(summary))
+    return 0
+
+
+def _make_field(args) -> int:
+    from ..gallery import synthetic
+    from ..io.writing import check_output_path
+    from ..scale.stream import write
+
+    out = check_output_path(args.output)
+    if args.in_chunks and args.kind != "lognormal":
+        raise InputError("--in-chunks is for lognormal fields")
+    shape = tuple(args.shape or (60, 220, 85))
+    lognormal = dict(shape=shape, sigma_ln=args.sigma, correlation_lengths=tuple(args.correlation),
+                     kv_kh=args.kv_kh, cell_size=tuple(args.cell), seed=args.seed)
+    plan = _memory_plan(args)
+    if args.kind == "lognormal" and args.in_chunks:
+        from .._runtime import keep_heap_small
+        from ..scale.boxes import box_count
+        from ..scale.memory import PROCESS_BYTES
+
+        keep_heap_small()
+        ds = synthetic.lognormal_field_in_chunks(chunk_cells=max((plan.memory - PROCESS_BYTES) // 400, 1),
+                                                 **lognormal)
+        with progress_bar(box_count(ds), "chunks", args.quiet, unit="chunk") as update:
+            write(ds, out, progress=update)
+        print(f"wrote {out}")
+        return 0
+    if args.kind == "lognormal":
+        need = synthetic.FFT_BYTES_PER_CELL * math.prod(shape)
+        if need > plan.memory:
+            raise InputError(f"a {' x '.join(map(str, shape))} field needs about {need / 2 ** 30:.1f} GB in memory "
+                             f"(budget {plan.memory / 2 ** 30:.1f} GB): add --in-chunks, or raise --memory")
+        ds = synthetic.lognormal_field(**lognormal)
+    elif args.kind == "layered":
+        if not args.thickness or not args.permeability or len(args.thickness) != len(args.permeability):
+            raise InputError("layered fields need --thickness and --permeability with one value per layer")
+        ds = synthetic.layered_field(args.thickness, args.permeability, kv_kh=args.kv_kh)
+    elif args.kind == "channels":
+        ds = synthetic.channel_field(tuple(args.shape or (80, 60, 20)), args.channels, 4, args.seed)
+    else:
+        ds = synthetic.demo_field(seed=args.seed or 7)
+    write(ds, out)
+    print(f"wrote {out}")
+    return 0
+
+
+def _demo(args) -> int:
+    from .demo import run_demo
+
+    run_demo(args.dir, quiet=args.quiet)
+    return 0
+
+
+def _check(args) -> int:
+    from .check import run_check
+
+    transient = {"drainage": args.drainage, "face": args.face, "column": args.well_column,
+                 "compressibility": args.compressibility, "viscosity": args.viscosity,
+                 "steps_per_doubling": args.steps_per_doubling}
+    run_check(args.fine, args.coarse, args.report, transient=transient, quiet=args.quiet)
+    return 0
+
+
+def _layers(args) -> int:
+    from ..checks.layering import field_layer_statistics
+    from ..core.layering import compare_groupings
+    from ..io.writing import check_output_path
+    from ..report.figures import plot_layer_profile
+    from ..report.text import format_comparison
+
+    if args.figure:
+        check_output_path(args.figure, (args.fine,))  # before the work, not after it
+    stats = field_layer_statistics(_memory_plan(args).open(args.fine))  # read slab by slab along x
+    result = compare_groupings(stats, args.target, edges=args.edges)
+    print(format_comparison(result))
+    if args.figure:
+        groupings = {name: value["edges"] for name, value in result.items() if "edges" in value}
+        plot_layer_profile(stats, groupings, args.figure)
+        print(f"wrote {args.figure}")
+    return 0
+
+
+def _bench(args) -> int:
+    from .bench import run_bench
+
+    run_bench(shape=tuple(args.shape), sample=args.sample, quiet=args.quiet, whole_model=args.whole_model)
+    return 0
+
+
+VERBS = {"coarsen": _coarsen, "inspect": _inspect, "make-field": _make_field, "demo": _demo,
+         "check": _check, "layers": _layers, "bench": _bench}
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
+                        format="upscale: %(levelname)s: %(message)s", stream=sys.stderr)
+    try:
+        return VERBS[args.verb](args)
+    except InputError as exc:
+        print(f"upscale: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("upscale: interrupted; no output was left behind", file=sys.stderr)
+        return 130
+    except Exception as exc:  # internal failure: one line unless --debug
+        if args.debug:
+            raise
+        print(f"upscale: internal error: {type(exc).__name__}: {exc} (rerun with --debug for details)",
+              file=sys.stderr)
+        return 1
+
+
+def run() -> None:
+    """Console entry point. After an interrupt (exit code 130) the process ends at once,
+    streams flushed and temporary files already removed, so that a second Ctrl-C landing
+    in the interpreter's shutdown cannot turn the exit into a traceback or a signal death."""
+    code = main()
+    if code == 130:
+        sys.stdout.flush()
+        sys.stderr.flush()
+        os._exit(130)
+    sys.exit(code)
+
+
+if __name__ == "__main__":
+    run()

@@ -1,0 +1,68 @@
+"""The array bundle of a grid (fine field or coarse grid) and the one definition of the axes.
+
+Arrays are ordered [x, y, z], z counting layers from the top down; lengths in m,
+permeability in mD.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import InputError
+
+AXES = ("x", "y", "z")
+
+
+@dataclass(frozen=True)
+class GridArrays:
+    """A normalised field as plain numpy arrays, shapes (nx, ny, nz) unless noted.
+
+    dx (nx,), dy (ny,), dz: cell sizes in m; kx, ky, kz in mD (inactive cells 0);
+    porosity, ntg fractions; active bool.
+    """
+
+    dx: np.ndarray
+    dy: np.ndarray
+    dz: np.ndarray
+    kx: np.ndarray
+    ky: np.ndarray
+    kz: np.ndarray
+    porosity: np.ndarray
+    ntg: np.ndarray
+    active: np.ndarray
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return self.kx.shape
+
+    @property
+    def bulk_volume(self) -> np.ndarray:
+        """Cell bulk volume, m3."""
+        return self.dx[:, None, None] * self.dy[None, :, None] * self.dz
+
+    @property
+    def pore_volume(self) -> np.ndarray:
+        """Cell pore volume porosity * ntg * bulk volume, m3 (0 in inactive cells)."""
+        return self.porosity * self.ntg * self.bulk_volume * self.active
+
+    def crop(self, cells: tuple[slice, slice, slice]) -> "GridArrays":
+        """The arrays of a box of cells (fine index slices per axis)."""
+        sx, sy, _ = cells
+        three = {n: getattr(self, n)[cells] for n in ("dz", "kx", "ky", "kz", "porosity", "ntg", "active")}
+        return GridArrays(dx=self.dx[sx], dy=self.dy[sy], **three)
+
+    def flow_permeability(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Permeability that carries flow, mD: kx*ntg, ky*ntg, kz; 0 in inactive cells."""
+        a = self.active
+        return self.kx * self.ntg * a, self.ky * self.ntg * a, self.kz * a
+
+
+def axis_index(axis) -> int:
+    """0, 1, 2 from 0, 1, 2 or 'x', 'y', 'z'."""
+    if isinstance(axis, str) and axis in AXES:
+        return AXES.index(axis)
+    if isinstance(axis, (int, np.integer)) and not isinstance(axis, bool) and 0 <= int(axis) < 3:
+        return int(axis)
+    raise InputError(f"unknown flow axis {axis!r}; use 'x', 'y' or 'z'")

@@ -1,0 +1,163 @@
+"""Algebraic multigrid preconditioning for the whole-model pressure systems.
+
+pyamg builds the smoothed-aggregation hierarchy (levels of Galerkin operators
+A_{l+1} = R_l A_l P_l, R_l = P_l^T); :class:`VCycle` applies it as one symmetric V-cycle:
+a forward sweep on the way down, the exact (pseudo-)inverse on the coarsest level and the
+reverse sweep on the way up, so the preconditioner is symmetric positive definite as
+conjugate gradients needs. The cycle is our own rather than pyamg's ``aspreconditioner``
+because that one computes two extra residual norms per application and keeps the coarse
+operators in block-sparse form: measured on the 1.12 M-cell benchmark field, 0.10 s instead
+of 0.22 s per application, for the same iteration count.
+
+On the finest level the sweep is line Gauss-Seidel: the unknowns are cut into lines, maximal
+runs of consecutive rows coupled to the next row (with cells in C order, z fastest, these are
+the grid's vertical columns, broken where a face is closed), and each line is solved exactly
+(tridiagonal, Thomas algorithm) with the rest of the row moved to the right-hand side. Thin
+layers couple far more strongly vertically than laterally, and cemented streaks cut that
+coupling; point smoothing handles neither well (measured on the demo field: 391 CG iterations
+with point Gauss-Seidel, 159 with exact column solves). Coarser levels use point Gauss-Seidel.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.linalg as spla
+from numba import njit
+
+from .._runtime import first_call
+
+SETUP_SEED = 20261202
+
+
+class VCycle(spla.LinearOperator):
+    """One V-cycle of a smoothed-aggregation hierarchy of the SPD matrix ``matrix`` (CSR)."""
+
+    def __init__(self, matrix):
+        import pyamg  # imported here: only the large models need it
+
+        # pyamg estimates spectral radii from random start vectors drawn from numpy's global
+        # generator: seed it for the set-up (and restore it) so that results repeat exactly.
+        state = np.random.get_state()
+        np.random.seed(SETUP_SEED)
+        try:
+            hierarchy = pyamg.smoothed_aggregation_solver(sp.csr_matrix(matrix), symmetry="symmetric")
+        finally:
+            np.random.set_state(state)
+        levels = hierarchy.levels
+        self.operators = [sp.csr_matrix(level.A).sorted_indices() for level in levels]
+        self.prolongators = [sp.csr_matrix(level.P) for level in levels[:-1]]
+        self.restrictors = [sp.csr_matrix(level.R) for level in levels[:-1]]
+        self.coarsest = np.linalg.pinv(self.operators[-1].toarray())
+        self.line_smoother = LineSmoother(self.operators[0])
+        super().__init__(dtype=np.float64, shape=self.operators[0].shape)
+
+    def _matvec(self, b):
+        return self._cycle(0, np.asarray(b, dtype=np.float64).ravel())
+
+    def _rmatvec(self, b):
+        return self._matvec(b)  # symmetric
+
+    def _cycle(self, level: int, b: np.ndarray) -> np.ndarray:
+        if level == len(self.operators) - 1:
+            return self.coarsest @ b
+        A = self.operators[level]
+        x = np.zeros_like(b)
+        self._smooth(level, x, b, forward=True)
+        x += self.prolongators[level] @ self._cycle(level + 1, self.restrictors[level] @ (b - A @ x))
+        self._smooth(level, x, b, forward=False)
+        return x
+
+    def _smooth(self, level: int, x: np.ndarray, b: np.ndarray, forward: bool) -> None:
+        A = self.operators[level]
+        if level == 0:
+            self.line_smoother.sweep(x, b, forward)
+        else:
+            _gauss_seidel(A, x, b, forward)
+
+
+class LineSmoother:
+    """Line Gauss-Seidel for a CSR matrix (see the module notes), set up once: the lines,
+    the matrix without the couplings inside each line, and each line's tridiagonal
+    factorisation (Thomas algorithm: elimination factors, upper band, inverse pivots)."""
+
+    def __init__(self, A: sp.csr_matrix):
+        A = sp.csr_matrix(A)
+        n = A.shape[0]
+        rows = np.repeat(np.arange(n), np.diff(A.indptr))
+        cols = A.indices
+        coupled = (A.data != 0) & (cols != rows)
+        new_line = np.ones(n, dtype=bool)
+        new_line[cols[coupled & (cols == rows + 1)]] = False  # row i + 1 continues row i's line
+        # A line must hold no coupling but its tridiagonal one: where two rows of a line are
+        # coupled further apart, start a new line at the later one. Splitting only refines
+        # the lines, so one pass separates every such pair.
+        line = np.cumsum(new_line) - 1
+        far = coupled & (np.abs(cols - rows) > 1) & (line[cols] == line[rows])
+        new_line[np.maximum(rows[far], cols[far])] = True
+        line = np.cumsum(new_line) - 1
+        self.starts = np.append(np.flatnonzero(new_line), n).astype(np.int64)
+        inside = (line[cols] == line[rows]) & coupled
+        upper = np.zeros(n)
+        lower = np.zeros(n)
+        upper[rows[inside & (cols == rows + 1)]] = A.data[inside & (cols == rows + 1)]
+        lower[rows[inside & (cols == rows - 1)]] = A.data[inside & (cols == rows - 1)]
+        self.upper = upper
+        with first_call(_thomas_factors):
+            self.factor, self.inverse_pivot = _thomas_factors(lower, A.diagonal(), upper, self.starts)
+        # Copies of the index arrays: eliminate_zeros works in place.
+        self.rest = sp.csr_matrix((np.where(inside | (cols == rows), 0.0, A.data), cols.copy(), A.indptr.copy()),
+                                  shape=A.shape)
+        self.rest.eliminate_zeros()
+
+    def sweep(self, x: np.ndarray, b: np.ndarray, forward: bool) -> None:
+        """One sweep in place, lines in order (``forward``) or in reverse; the two are each
+        other's adjoint, which keeps the V-cycle symmetric."""
+        R = self.rest
+        with first_call(_line_sweep):
+            _line_sweep(R.indptr, R.indices, R.data, self.factor, self.upper, self.inverse_pivot,
+                        self.starts, x, b, forward)
+
+
+@njit(cache=True)
+def _thomas_factors(lower, diagonal, upper, starts):
+    """Per line [s, e): elimination factors l_i / d_{i-1} and inverse pivots 1 / d_i."""
+    factor = np.zeros(diagonal.size)
+    inverse_pivot = np.empty(diagonal.size)
+    for line in range(starts.size - 1):
+        s, e = starts[line], starts[line + 1]
+        pivot = diagonal[s]
+        inverse_pivot[s] = 1.0 / pivot
+        for i in range(s + 1, e):
+            factor[i] = lower[i] / pivot
+            pivot = diagonal[i] - factor[i] * upper[i - 1]
+            inverse_pivot[i] = 1.0 / pivot
+    return factor, inverse_pivot
+
+
+@njit(cache=True)
+def _line_sweep(indptr, indices, data, factor, upper, inverse_pivot, starts, x, b, forward):
+    lines = starts.size - 1
+    for step in range(lines):
+        line = step if forward else lines - 1 - step
+        s, e = starts[line], starts[line + 1]
+        previous = 0.0
+        for i in range(s, e):  # right-hand side and forward elimination, kept in x
+            r = b[i]
+            for p in range(indptr[i], indptr[i + 1]):
+                r -= data[p] * x[indices[p]]
+            previous = r - factor[i] * previous
+            x[i] = previous
+        following = 0.0
+        for i in range(e - 1, s - 1, -1):  # back substitution
+            following = (x[i] - upper[i] * following) * inverse_pivot[i]
+            x[i] = following
+
+
+def _gauss_seidel(A: sp.csr_matrix, x: np.ndarray, b: np.ndarray, forward: bool) -> None:
+    """One Gauss-Seidel sweep on ``A x = b`` in place, rows in order or in reverse."""
+    from pyamg import amg_core
+
+    n = A.shape[0]
+    start, stop, step = (0, n, 1) if forward else (n - 1, -1, -1)
+    amg_core.gauss_seidel(A.indptr, A.indices, A.data, x, b, start, stop, step)

@@ -1,0 +1,199 @@
+"""What a coarse grid holds per block, computed for a box of whole blocks: the recipe
+(methods per axis, boundary condition, border, multipliers) and :func:`block_variables`.
+
+The coarse values follow the file schema's net-to-gross convention: ``kx``, ``ky`` are
+net values (``kx * ntg`` is the effective horizontal permeability), ``kz`` is effective
+as written, and the pore volume equals the sum of fine pore volumes.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import InputError
+from .block_problems import BATCH_BYTES, BOUNDARY_CONDITIONS, flow_tensors
+from .face_problems import flow_transmissibility, sealed_and_face_flow
+from .grid import AXES, GridArrays
+from .partition import Partition
+from .static import STATIC_METHODS, block_length, cardwell_parsons, divide_or_zero, static_average
+from .two_point import cell_geometry, half_transmissibility
+from .units import unit_system
+
+METHODS = STATIC_METHODS + ("flow",)
+
+
+FULL_TENSOR = ("periodic", "linear")
+
+
+def parse_methods(method) -> tuple[str, str, str]:
+    """One method for all axes, 'mx,my,mz', a 3-sequence, or a mapping axis -> method."""
+    if isinstance(method, str):
+        names = [m.strip() for m in method.split(",")]
+        names = names * 3 if len(names) == 1 else names
+    elif isinstance(method, dict):
+        missing = [a for a in AXES if a not in method]
+        if missing or set(method) - set(AXES):
+            raise InputError(f"per-direction methods need exactly the axes x, y, z, got {sorted(method)}")
+        names = [method[a] for a in AXES]
+    else:
+        names = list(method)
+    if len(names) != 3:
+        raise InputError(f"give one method or three (x, y, z), got {len(names)}: {names}")
+    for name in names:
+        if name not in METHODS:
+            raise InputError(f"unknown method '{name}'; choose from {', '.join(METHODS)}")
+    return tuple(names)
+
+
+def method_label(methods: tuple[str, str, str]) -> str:
+    if len(set(methods)) == 1:
+        return methods[0]
+    return ", ".join(f"{a}: {m}" for a, m in zip(AXES, methods))
+
+
+@dataclass(frozen=True)
+class Recipe:
+    """What ``coarsen`` computes: methods per axis, local boundary condition and border
+    (fine cells), power exponent, flow-based multipliers, transmissibility units."""
+
+    methods: tuple[str, str, str]
+    bc: str
+    border: int
+    omega: float | None
+    multipliers: bool
+    units: str
+
+    @property
+    def flow(self) -> bool:
+        return "flow" in self.methods
+
+    @property
+    def full(self) -> bool:
+        """A full tensor (kxy, kxz, kyz) is written."""
+        return self.flow and self.bc in FULL_TENSOR
+
+    def halo(self, partition: Partition) -> tuple[tuple[int, int, int], tuple[int, int, int]]:
+        """Fine cells a box of whole blocks needs beyond its own, below and above per axis:
+        the border ring of the local solves, and for face problems the next block too."""
+        ring = self.border if (self.flow or self.multipliers) else 0
+        high = [ring + (int(partition.sizes(a).max()) if self.multipliers else 0) for a in range(3)]
+        return (ring,) * 3, tuple(high)
+
+
+def make_recipe(method="flow", bc: str = "sealed", border: int = 0, omega: float | None = None,
+                multipliers: bool = False, units: str = "metric") -> Recipe:
+    """Check ``coarsen``'s options (InputError naming the bad one) and gather them."""
+    methods = parse_methods(method)
+    if "flow" in methods and bc not in BOUNDARY_CONDITIONS:
+        raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
+    if bc in FULL_TENSOR and "flow" in methods and set(methods) != {"flow"}:
+        raise InputError(f"boundary condition '{bc}' gives a full tensor: use method 'flow' on all axes")
+    if "power" in methods and (omega is None or not np.isfinite(omega)):
+        raise InputError("method 'power' needs a finite exponent omega (e.g. --omega 0.5)")
+    if border < 0 or int(border) != border:
+        raise InputError(f"border must be a whole number of fine cells >= 0, got {border}")
+    unit_system(units)
+    return Recipe(methods, bc if "flow" in methods else "none", int(border), omega, bool(multipliers), units)
+
+
+def block_variables(cells: GridArrays, partition: Partition, blocks: tuple[slice, slice, slice],
+                    recipe: Recipe, progress=None, budget: int = BATCH_BYTES) -> dict[str, np.ndarray]:
+    """Everything ``coarsen`` writes per coarse block, for the box ``blocks`` (coarse index
+    slices of ``partition``), from ``cells``, which hold the box and its halo
+    (:meth:`Recipe.halo`).
+
+    Per block: dz, kx, ky, kz (and kxy, kxz, kyz), porosity, ntg, pore and bulk volume,
+    active, the Cardwell-Parsons bounds, solve residuals; ``half_x`` ... half-cell
+    transmissibilities in the recipe's units (for the faces); with multipliers
+    ``tx_flow`` ... on the faces after each block of the box (none after the grid's last).
+    """
+    box = tuple(slice(int(partition.edges[a][b.start]), int(partition.edges[a][b.stop])) for a, b in enumerate(blocks))
+    core = cells.crop(box)
+    core_partition = partition.crop(blocks)
+    shape = core_partition.shape
+    only = tuple(np.arange(b.start, b.stop) for b in blocks)
+    volumes = _volumes(core, core_partition)
+    k_flow = core.flow_permeability()
+    weight = core.bulk_volume * core.active
+    effective = np.zeros(shape + (3, 3))
+    out = {}
+    solves = dict(border=recipe.border, progress=progress, budget=budget, only=only)
+    together = recipe.flow and recipe.multipliers and recipe.bc == "sealed"
+    if together:  # the sealed solves share their elimination with the face problems
+        flow, faces, residuals = sealed_and_face_flow(cells, partition, units=recipe.units, **solves)
+    elif recipe.flow:
+        flow = flow_tensors(cells, partition, bc=recipe.bc, **solves)
+    if recipe.flow:
+        effective[:] = flow.tensor[blocks]
+        out["solve_residual"] = flow.residual[blocks]
+        if recipe.bc == "linear":
+            out["tensor_asymmetry"] = flow.asymmetry[blocks]
+    for axis, name in enumerate(recipe.methods):
+        if name != "flow":
+            effective[..., axis, axis] = static_average(k_flow[axis], weight, core_partition, name, recipe.omega)
+    if not recipe.full:
+        effective *= np.eye(3)
+    active = volumes["active"]
+    k = np.where(active[..., None, None], effective, 0.0)
+    # Net convention: horizontal components are divided by ntg, vertical ones are effective.
+    net = np.where(HORIZONTAL, divide_or_zero(k, volumes["ntg"][..., None, None]), k)
+    dx = np.add.reduceat(core.dx, core_partition.edges[0][:-1])
+    dy = np.add.reduceat(core.dy, core_partition.edges[1][:-1])
+    dz = block_length(core_partition, core.dx, core.dy, core.dz, 2)
+    out.update(dz=dz, kx=net[..., 0, 0], ky=net[..., 1, 1], kz=net[..., 2, 2], porosity=volumes["porosity"],
+               ntg=volumes["ntg"], pore_volume=volumes["pore"], bulk_volume=volumes["bulk"],
+               active=active.astype(np.int8))
+    if recipe.full:
+        out.update(kxy=net[..., 0, 1], kxz=net[..., 0, 2], kyz=net[..., 1, 2])
+    _, constant, to_length = unit_system(recipe.units)
+    volume, lengths = cell_geometry(dx, dy, dz)
+    for axis, name in enumerate(AXES):
+        lower, upper = cardwell_parsons(k_flow[axis], core.dx, core.dy, core.dz, core_partition, axis)
+        out[f"k{name}_lower_bound"], out[f"k{name}_upper_bound"] = lower, upper
+        # T scales with length (A / L): mD*m -> mD*ft multiplies by the metres-to-feet factor.
+        out[f"half_{name}"] = constant * to_length * half_transmissibility(k[..., axis, axis], volume, lengths[axis])
+    if recipe.multipliers:
+        if not together:
+            faces, residuals = flow_transmissibility(cells, partition, units=recipe.units, **solves)
+        residual = out.get("solve_residual", np.zeros(shape))
+        for axis, name in enumerate(AXES):
+            owned = list(blocks)
+            owned[axis] = slice(blocks[axis].start, min(blocks[axis].stop, partition.shape[axis] - 1))
+            out[f"t{name}_flow"] = faces[axis][tuple(owned)]
+            local = tuple(slice(0, o.stop - o.start) for o in owned)
+            residual[local] = np.maximum(residual[local], residuals[axis][tuple(owned)])
+        out["solve_residual"] = residual
+    return out
+
+
+def block_variable_names(recipe: Recipe) -> list[str]:
+    """The names :func:`block_variables` returns for ``recipe`` (a lazy run declares
+    them before any box is computed)."""
+    names = ["dz", "kx", "ky", "kz", "porosity", "ntg", "pore_volume", "bulk_volume", "active"]
+    if recipe.flow or recipe.multipliers:
+        names.append("solve_residual")
+    if recipe.flow and recipe.bc == "linear":
+        names.append("tensor_asymmetry")
+    if recipe.full:
+        names += ["kxy", "kxz", "kyz"]
+    names += [f"k{a}_{side}_bound" for a in AXES for side in ("lower", "upper")]
+    names += [f"half_{a}" for a in AXES]
+    if recipe.multipliers:
+        names += [f"t{a}_flow" for a in AXES]
+    return names
+
+
+HORIZONTAL = np.array([[1, 1, 0], [1, 1, 0], [0, 0, 0]], dtype=bool)
+
+
+def _volumes(cells: GridArrays, partition: Partition) -> dict[str, np.ndarray]:
+    """Coarse bulk and pore volume (m3), net-to-gross and porosity conserving pore volume."""
+    bulk = partition.block_sum(cells.bulk_volume)
+    pore = partition.block_sum(cells.pore_volume)
+    net = partition.block_sum(cells.ntg * cells.bulk_volume * cells.active)
+    ntg = divide_or_zero(net, bulk)
+    porosity = divide_or_zero(pore, net)
+    active = partition.block_sum(cells.active) > 0
+    return {"bulk": bulk, "pore": pore, "ntg": ntg, "porosity": porosity, "active": active}

@@ -1,0 +1,2 @@
+"""Synthetic fields (invented data) and the demo scenario. Imports ``upscale.core`` and
+``upscale.io``."""

@@ -1,0 +1,157 @@
+"""Opening field files: a guarded first look at the header, lazy or eager reading,
+checksums; every field read is validated.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import select
+import signal
+import warnings
+from pathlib import Path
+
+import numpy as np
+import xarray as xr
+
+from ..errors import InputError
+from .validation import validate
+
+
+def file_checksum(path: str | os.PathLike) -> str:
+    """SHA-256 of a file's bytes, hex."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for chunk in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+#: seconds the NetCDF library may take to open a file's header in the probe (see _probe_header)
+PROBE_SECONDS = 20.0
+
+
+#: bytes of address space the probe may use beyond what the process already has
+PROBE_MEMORY = 1 << 30
+
+
+def _probe_header(path: Path) -> None:
+    """Open the file's header in a forked child first; raise InputError if that fails.
+
+    On corrupt files the NetCDF and HDF5 libraries can crash (SIGSEGV), loop forever or
+    try to allocate gigabytes while opening, and no exception handler catches that. The
+    child has a time and memory limit; its death or silence marks the file as corrupt.
+    """
+    if not hasattr(os, "fork"):
+        return
+    import netCDF4  # imported before forking: the parent needs it next anyway
+
+    read_end, write_end = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # child: never returns
+        status = 0
+        try:
+            os.close(read_end)
+            null = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(null, 1)
+            os.dup2(null, 2)  # HDF5 prints diagnostics on errors
+            try:  # a header that claims gigabytes fails to allocate instead of taking the memory
+                import resource
+
+                with open("/proc/self/status") as status_file:
+                    size = next(int(line.split()[1]) * 1024 for line in status_file if line.startswith("VmSize:"))
+                hard = resource.getrlimit(resource.RLIMIT_AS)[1]
+                resource.setrlimit(resource.RLIMIT_AS, (size + PROBE_MEMORY, hard))
+            except Exception:
+                pass  # no limit available here
+            try:
+                with netCDF4.Dataset(path) as nc:
+                    for var in nc.variables.values():
+                        var.ncattrs()
+            except BaseException as exc:
+                reason = (str(exc).splitlines() or [""])[0] or type(exc).__name__
+                os.write(write_end, reason.encode("utf-8", "replace")[:2000] or b"?")
+                status = 3
+        finally:
+            os._exit(status)
+    os.close(write_end)
+    try:
+        ready, _, _ = select.select([read_end], [], [], PROBE_SECONDS)
+        message = os.read(read_end, 4096).decode("utf-8", "replace") if ready else ""
+    except BaseException:  # e.g. Ctrl-C while waiting: do not leave the child behind
+        os.kill(pid, signal.SIGKILL)
+        os.waitpid(pid, 0)
+        raise
+    finally:
+        os.close(read_end)
+    if not ready:
+        os.kill(pid, signal.SIGKILL)
+    try:
+        _, status = os.waitpid(pid, 0)
+    except ChildProcessError:  # reaped elsewhere (SIGCHLD ignored): judge by the message alone
+        status = 3 << 8 if message else 0
+    if not ready:
+        raise InputError(f"{path}: not a readable NetCDF file (the NetCDF library did not finish opening it "
+                         f"within {PROBE_SECONDS:g} s; the file is probably corrupt)")
+    if os.WIFSIGNALED(status):
+        name = signal.Signals(os.WTERMSIG(status)).name
+        raise InputError(f"{path}: not a readable NetCDF file (the NetCDF library crashed on it with {name}; "
+                         f"the file is probably corrupt)")
+    if os.WEXITSTATUS(status) != 0:
+        raise InputError(f"{path}: not a readable NetCDF file ({message})")
+
+
+def check_readable(path: str | os.PathLike) -> Path:
+    """Refuse a missing file, a folder, or a file whose header the NetCDF library cannot
+    open (:func:`_probe_header`)."""
+    path = Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: no such file")
+    if path.is_dir():
+        raise InputError(f"{path}: is a folder, expected a NetCDF file")
+    _probe_header(path)
+    return path
+
+
+def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
+    """Read and validate a fine (or coarse) field file; returns a normalised Dataset.
+
+    ``chunks`` (a dask chunk spec, e.g. ``{"x": 100}`` or ``"auto"``) opens the file lazily:
+    the checks run chunk by chunk in one pass and the values stay on disk until used
+    (``coarsen`` aligns the chunks to whole coarse blocks). Raises :class:`InputError`
+    naming the variable, the problem and the first bad cell.
+    """
+    path = check_readable(path)
+    try:
+        # no time decoding: a field holds no times, and units such as 'days since ...' on a
+        # cell size must be refused as unknown units, not turned into dates
+        # errstate: overflow or NaN from scale_factor/add_offset is reported by validate, not as
+        # numpy warnings that break the one-line error
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            # chunks along x also cut the (small) cell-size variables, stored whole
+            warnings.filterwarnings("ignore", message="The specified chunks separate", category=UserWarning)
+            raw = xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False,
+                                  chunks=chunks)
+            if chunks is None:
+                with raw:
+                    raw = raw.load()
+    except Exception as exc:  # netCDF4 raises OSError, ValueError, RuntimeError...
+        raise _unreadable(path, exc) from None
+    raw.attrs["source_path"] = str(path.resolve())
+    raw.attrs["source_sha256"] = file_checksum(path)
+    try:
+        with np.errstate(all="ignore"):
+            return validate(raw, where=str(path))
+    except InputError:
+        raw.close()
+        raise
+    except Exception as exc:
+        raw.close()
+        if chunks is None:  # the data were read above: a fault of ours, not of the file
+            raise
+        raise _unreadable(path, exc) from None  # a lazy read failing part-way through the file
+
+
+def _unreadable(path: Path, exc: Exception) -> InputError:
+    reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    return InputError(f"{path}: not a readable NetCDF file ({reason})")

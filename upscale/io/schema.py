@@ -1,0 +1,65 @@
+"""The field schema: its variable names, building a Dataset in it, and its numpy arrays.
+
+A field is an xarray Dataset on dimensions (x, y, z), z counting layers from the top.
+After :func:`upscale.io.reading.open_field` (or :func:`upscale.io.validation.validate`)
+a field is *normalised*: sizes are in metres, ``dz`` is three-dimensional, ``kx``, ``ky``,
+``kz`` (mD), ``porosity``, ``ntg`` and ``active`` are all present, and inactive cells
+hold zeros instead of fill values.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import xarray as xr
+
+from ..core.grid import AXES, GridArrays
+
+PERMEABILITY = ("kx", "ky", "kz")
+
+
+CELL_VALUES = PERMEABILITY + ("porosity", "ntg")
+
+
+def fine_dataset(kx, ky, kz, porosity, dx, dy, dz, ntg=None, active=None,
+                 length_units: str = "m", attrs: dict | None = None) -> xr.Dataset:
+    """Build a dataset in the fine-field schema from numpy (or dask) arrays.
+
+    Permeability in mD; dx (nx,), dy (ny,), dz (nz,) or (nx, ny, nz) in ``length_units``.
+    """
+    def floats(a):  # dask arrays stay lazy
+        return a.astype(float) if hasattr(a, "dask") else np.asarray(a, dtype=float)
+
+    kx = floats(kx)
+    dz = floats(dz)
+    cell = AXES
+    data = {
+        "dx": (("x",), np.asarray(dx, dtype=float), {"units": length_units, "long_name": "cell size along x"}),
+        "dy": (("y",), np.asarray(dy, dtype=float), {"units": length_units, "long_name": "cell size along y"}),
+        "dz": (("z",) if dz.ndim == 1 else cell, dz, {"units": length_units, "long_name": "cell thickness"}),
+        "kx": (cell, kx, {"units": "mD", "long_name": "permeability along x"}),
+        "ky": (cell, floats(ky), {"units": "mD", "long_name": "permeability along y"}),
+        "kz": (cell, floats(kz), {"units": "mD", "long_name": "permeability along z"}),
+        "porosity": (cell, floats(porosity), {"units": "1", "long_name": "porosity"}),
+    }
+    if ntg is not None:
+        data["ntg"] = (cell, floats(ntg), {"units": "1", "long_name": "net-to-gross"})
+    if active is not None:
+        data["active"] = (cell, np.asarray(active, dtype=np.int8), {"long_name": "active cell flag"})
+    ds = xr.Dataset({name: xr.Variable(*spec) for name, spec in data.items()})
+    ds.attrs.update({"Conventions": "CF-1.10"}, **(attrs or {}))
+    return ds
+
+
+def arrays(ds: xr.Dataset) -> GridArrays:
+    """The numpy arrays of a normalised field (see :func:`validate`)."""
+    return GridArrays(
+        dx=np.asarray(ds["dx"].values, dtype=float),
+        dy=np.asarray(ds["dy"].values, dtype=float),
+        dz=np.asarray(ds["dz"].values, dtype=float),
+        kx=np.asarray(ds["kx"].values, dtype=float),
+        ky=np.asarray(ds["ky"].values, dtype=float),
+        kz=np.asarray(ds["kz"].values, dtype=float),
+        porosity=np.asarray(ds["porosity"].values, dtype=float),
+        ntg=np.asarray(ds["ntg"].values, dtype=float),
+        active=np.asarray(ds["active"].values).astype(bool),
+    )

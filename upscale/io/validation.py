@@ -1,0 +1,188 @@
+"""Checking a Dataset against the field schema and normalising it (units, dz, active
+cells). Every refusal is an :class:`~upscale.errors.InputError` naming the variable, the
+problem, the number of bad cells and the first of them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import xarray as xr
+
+from ..core.grid import AXES
+from ..core.units import LENGTH_TO_M, PERMEABILITY_TO_MD
+from ..errors import InputError
+from .schema import PERMEABILITY
+
+
+@dataclass(frozen=True)
+class Check:
+    """One rule on the cells: ``mask`` (DataArray, numpy or dask) marks the bad ones."""
+
+    mask: xr.DataArray
+    name: str
+    problem: str
+    fix: str
+
+
+def _first_flat_index(mask) -> int:
+    """C-order flat index of the first set cell of a numpy or dask boolean array."""
+    if not hasattr(mask, "dask"):
+        return int(np.argmax(np.ravel(mask)))
+    import dask.array as da
+
+    def first(block, block_info=None):
+        found = np.flatnonzero(block)
+        if found.size == 0:
+            return np.full((1,) * block.ndim, np.iinfo(np.int64).max)
+        local = np.unravel_index(found[0], block.shape)
+        where = [lo + i for (lo, _), i in zip(block_info[0]["array-location"], local)]
+        return np.full((1,) * block.ndim, np.ravel_multi_index(where, mask.shape))
+
+    return int(da.map_blocks(first, mask, dtype=np.int64, chunks=(1,) * mask.ndim).min().compute(scheduler="threads"))
+
+
+def count_bad(checks: list[Check]) -> tuple[int, ...]:
+    """Bad cells of every check. A lazy field is counted slab by slab along x (its
+    chunks along x), one slab at a time, so that the pass holds one slab in memory."""
+    import dask
+
+    cube = next((c.mask for c in checks if c.mask.chunks is not None and c.mask.ndim == 3), None)
+    if cube is None:
+        return tuple(int(n) for n in dask.compute(*[c.mask.data.sum() for c in checks], scheduler="sync"))
+    edges = np.cumsum((0,) + cube.chunksizes["x"])
+    totals = np.zeros(len(checks), dtype=np.int64)
+    for first, (start, stop) in enumerate(zip(edges[:-1], edges[1:])):
+        parts = [c.mask.isel(x=slice(start, stop)).data.sum() if "x" in c.mask.dims
+                 else (c.mask.data.sum() if first == 0 else 0) for c in checks]
+        totals += np.array(dask.compute(*parts, scheduler="sync"), dtype=np.int64)
+    return tuple(int(n) for n in totals)
+
+
+def refuse_first(checks: list[Check], counts: tuple[int, ...], where: str) -> None:
+    """Raise for the first check with bad cells: count, first index and a hint."""
+    for check, count in zip(checks, counts):
+        if count:
+            index = np.unravel_index(_first_flat_index(check.mask.data), check.mask.shape)
+            at = "(" + ", ".join(f"{d}={i}" for d, i in zip(check.mask.dims, index)) + ")"
+            raise InputError(f"{where}: variable '{check.name}' {check.problem} in {count} cell(s), first at "
+                             f"{at}; {check.fix}")
+
+
+def _unit_scale(ds: xr.Dataset, name: str, where: str, table: dict, default: str, wanted: str) -> float:
+    """Factor converting variable ``name`` from its ``units`` attribute (``default`` when
+    absent) with ``table``; an unknown unit is refused, naming the ones accepted."""
+    units = str(ds[name].attrs.get("units", default)).strip()
+    scale = table.get(units.lower())
+    if scale is None:
+        raise InputError(f"{where}: variable '{name}' has unknown units {units!r}; use {wanted}")
+    return scale
+
+
+def _length_scale(ds: xr.Dataset, name: str, where: str) -> float:
+    return _unit_scale(ds, name, where, LENGTH_TO_M, "m", "'m' or 'ft'")
+
+
+def _permeability_scale(ds: xr.Dataset, name: str, where: str) -> float:
+    return _unit_scale(ds, name, where, PERMEABILITY_TO_MD, "mD", "'mD'")
+
+
+def _require_dims(ds: xr.Dataset, name: str, allowed: tuple[tuple[str, ...], ...], where: str) -> None:
+    dims = ds[name].dims
+    if dims in allowed:
+        return
+    wanted = " or ".join("(" + ", ".join(a) + ")" for a in allowed)
+    got = "(" + ", ".join(dims) + ")"
+    if any(sorted(dims) == sorted(a) for a in allowed):
+        raise InputError(f"{where}: variable '{name}' has dimension order {got}, expected {wanted}; "
+                         f"transpose it, e.g. ds.transpose('x', 'y', 'z')")
+    raise InputError(f"{where}: variable '{name}' has dimensions {got}, expected {wanted}")
+
+
+def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
+    """Check a dataset against the fine-field schema and return it normalised (see module
+    doc). Numpy- and dask-backed datasets go through the same rules; for a lazy one the
+    cell checks run chunk by chunk and the result stays lazy."""
+    where = ds.attrs.get("source_path", where) if where == "field" else where
+    missing = [n for n in ("dx", "dy", "dz", "porosity") if n not in ds]
+    has_tensor = all(n in ds for n in PERMEABILITY)
+    if not has_tensor and "k" not in ds:
+        present = [n for n in PERMEABILITY if n in ds]
+        missing += [n for n in PERMEABILITY if n not in ds] if present else ["kx, ky, kz (or k)"]
+    if missing:
+        found = ", ".join(sorted(map(str, ds.data_vars))) or "none"
+        raise InputError(f"{where}: missing variable(s) {', '.join(missing)} (found: {found})")
+    for name in AXES:
+        if name not in ds.dims:
+            raise InputError(f"{where}: missing dimension '{name}' (dimensions are x, y, z)")
+        if ds.sizes[name] == 0:
+            raise InputError(f"{where}: dimension '{name}' has length 0")
+    _require_dims(ds, "dx", (("x",),), where)
+    _require_dims(ds, "dy", (("y",),), where)
+    _require_dims(ds, "dz", (("z",), AXES), where)
+    k_names = PERMEABILITY if has_tensor else ("k",)
+    optional = [n for n in ("ntg", "active") if n in ds]
+    for name in (*k_names, "porosity", *optional):
+        _require_dims(ds, name, (AXES,), where)
+    for name in ("dx", "dy", "dz", *k_names, "porosity", *optional):
+        if ds[name].dtype.kind not in "biuf":
+            raise InputError(f"{where}: variable '{name}' is not numeric (type {ds[name].dtype}); "
+                             f"store it as numbers")
+
+    def variable(name: str, scale: float = 1.0) -> xr.DataArray:
+        return xr.DataArray(ds[name].variable.astype(float) * scale)
+
+    sizes = {n: variable(n, _length_scale(ds, n, where)) for n in ("dx", "dy", "dz")}
+    size_checks = []
+    for name, values in sizes.items():
+        size_checks.append(Check(~np.isfinite(values), name, "is NaN or infinite", "cell sizes must be finite"))
+        if name == "dz":
+            size_checks.append(Check(values < 0, name, "is negative", "thickness must be >= 0 (0 = pinched out)"))
+        else:
+            size_checks.append(Check(values <= 0, name, "is zero or negative", "cell sizes must be > 0"))
+    template = xr.DataArray(ds[k_names[0]].variable)
+    dz = sizes["dz"].broadcast_like(template).transpose(*AXES)
+    active = dz > 0
+    checks = []
+    if "active" in ds:
+        flag = variable("active")
+        checks.append(Check(~flag.isin((0.0, 1.0)), "active", "is not 0 or 1", "use 1 for active, 0 for inactive"))
+        active = active & (flag == 1.0)
+    values = {name: variable(name, _permeability_scale(ds, name, where)) for name in k_names}
+    values["porosity"] = variable("porosity")
+    values["ntg"] = variable("ntg") if "ntg" in ds else xr.ones_like(template, dtype=float)
+    for name, data in values.items():
+        fix = ("flag such cells inactive with an 'active' variable, or fill them" if name != "ntg"
+               else "flag such cells inactive, or fill them")
+        checks.append(Check(active & ~np.isfinite(data), name, "is NaN or infinite in active cells", fix))
+        checks.append(Check(active & (data < 0), name, "is negative in active cells",
+                             "permeability and fractions must be >= 0"))
+        if name in ("porosity", "ntg"):
+            checks.append(Check(active & (data > 1), name, "is above 1 in active cells",
+                                 "give fractions (0..1), not percent"))
+    refuse_first(size_checks, count_bad(size_checks), where)  # first: the other rules read dz
+    inactive, *counts = count_bad([Check(~active, "active", "", "")] + checks)
+    if inactive == active.size:
+        raise InputError(f"{where}: no active cell (all cells pinched out or flagged inactive)")
+    refuse_first(checks, tuple(counts), where)
+    if not has_tensor:
+        values.update(kx=values["k"], ky=values["k"], kz=values["k"])
+    normal = {n: xr.where(active, values[n], 0.0) for n in (*PERMEABILITY, "porosity", "ntg")}
+    out = xr.Dataset(
+        {
+            "dx": (("x",), sizes["dx"].data, {"units": "m"}),
+            "dy": (("y",), sizes["dy"].data, {"units": "m"}),
+            "dz": (AXES, dz.data, {"units": "m"}),
+            **{n: (AXES, normal[n].data, {"units": "mD"}) for n in PERMEABILITY},
+            "porosity": (AXES, normal["porosity"].data, {"units": "1"}),
+            "ntg": (AXES, normal["ntg"].data, {"units": "1"}),
+            "active": (AXES, active.astype(np.int8).data, {}),
+        },
+        attrs=dict(ds.attrs),
+    )
+    for name in ds.data_vars:
+        if name not in out and name != "k":
+            out[name] = ds[name]  # carried along unchanged: coarse-file extras such as tx, x_start
+    out.attrs["length_units_in"] = str(ds["dx"].attrs.get("units", "m"))
+    return out

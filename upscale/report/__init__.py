@@ -1,0 +1,2 @@
+"""What people read: the HTML report, its figures (matplotlib) and text tables.
+Imports ``upscale.checks``, ``upscale.io``, ``upscale.core`` and matplotlib."""
