@@ -8,15 +8,20 @@ import xarray as xr
 
 from ..core.grid import AXES
 from ..io.coarse_file import coarse_partition
+from ..io.schema import arrays
+from ..io.validation import validate
 from .blocks import TOLERANCE, block_errors, flow_reference
+from .faces import barrier_summary
 from .layering import grouping_of_coarse_grid
+from .steady import steady_check
+from .transient import check_options, transient_check
 
 
 def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE,
                  transient: dict | None = None, say=None) -> tuple[dict, dict]:
     """Every check of a coarse grid against its fine field.
 
-    ``transient``: keyword arguments of :func:`upscale.transient.transient_check` (drainage,
+    ``transient``: keyword arguments of :func:`upscale.checks.transient.transient_check` (drainage,
     face, column, compressibility, viscosity, steps_per_doubling, ...); ``say``: called with
     a short line as each stage starts (progress), or None.
 
@@ -24,15 +29,9 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
     pressure_rms, transient, blocks, layering, multipliers, pore_volume); arrays holds what
     the figures need.
     """
-    from ..io.schema import arrays as fine_arrays
-    from ..io.validation import validate
-    from .faces import barrier_summary
-    from .steady import steady_check
-    from .transient import check_options, transient_check
-
     fine = validate(fine, where="fine field")
     coarse = validate(coarse, where="coarse grid")
-    cells = fine_arrays(fine)
+    cells = arrays(fine)
     partition = coarse_partition(coarse, cells.shape)
     check_options(coarse, cells.shape, **(transient or {}))  # fail before the long solves
     say = say or (lambda line: None)
@@ -70,6 +69,27 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
 
 def check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE,
           transient: dict | None = None) -> dict:
-    """``upscale.check``: every check of a coarse grid against its fine field, as the
-    JSON-ready metrics dict written to metrics.json (``metrics["global"]["x"]`` ...)."""
+    """``upscale.check``: every check of a coarse grid against its fine field.
+
+    Parameters
+    ----------
+    fine : xarray.Dataset
+        The fine field (``open_field``).
+    coarse : xarray.Dataset
+        Its coarse grid (``coarsen``, or a coarse file opened with ``open_field``).
+    tolerance : float
+        Relative difference above which a block's static average counts as off the
+        flow-based value.
+    transient : dict, optional
+        Options of the transient drainage check: drainage, face, column, compressibility
+        (1/bar), viscosity (cP), steps_per_doubling.
+
+    Returns
+    -------
+    dict
+        The JSON-ready metrics of metrics.json: ``metrics["global"]["x"]`` with
+        ``fine_k``, ``coarse_k`` (mD) and ``relative_error``, and ``layer_flow_share``,
+        ``pressure_rms``, ``blocks``, ``transient``, ``layering``, ``multipliers``,
+        ``pore_volume``, ``inputs``, ``coarse``.
+    """
     return check_models(fine, coarse, tolerance, transient)[0]

@@ -7,14 +7,14 @@ import time
 
 from ..checks.blocks import TOLERANCE
 from ..checks.run import check_models
+from ..io.reading import open_field
+from ..report.check_report import build_report
 from ..report.text import format_check
 
 
 def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERANCE,
               transient: dict | None = None, quiet: bool = False) -> dict:
     """``upscale check``: print the whole-model comparison; write the report if asked."""
-    from ..io.reading import open_field
-
     fine = open_field(fine_path)
     coarse = open_field(coarse_path)
     started = time.perf_counter()
@@ -26,8 +26,6 @@ def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERA
     metrics, arrays = check_models(fine, coarse, tolerance, transient, say)
     print(format_check(metrics))
     if report_dir is not None:
-        from ..report.check_report import build_report
-
         paths = build_report(report_dir, metrics, arrays)
         print(f"wrote {paths['html']} and {paths['metrics']}")
     return metrics

@@ -5,8 +5,6 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
-import numpy as np
-
 from ..about import CAUTION
 from ..checks.blocks import block_errors
 from ..checks.faces import barrier_summary
@@ -18,9 +16,10 @@ from ..io.reading import open_field
 from ..io.schema import arrays
 from ..io.writing import atomic_write, multiplier_csv
 from ..report.figures import fine_coarse_maps, save
-from ..report.text import format_summary
+from ..report.text import format_static_versus_flow, format_summary
 from ..scale.coarsen import coarsen
 from ..scale.stream import write
+from .check import run_check
 
 DEMO_RATIO = (5, 5, 5)
 
@@ -36,15 +35,7 @@ DEMO_TRANSIENT = {"drainage": "face", "face": "x-", "steps_per_doubling": 4, "sp
 def _static_versus_flow(cells, partition, coarse) -> str:
     """Text table: per direction, how far each static average is from the flow-based value."""
     _, errors = block_errors(cells, partition, coarse_effective(coarse))
-    lines = ["Static averages against flow-based (sealed) permeability, per coarse block:",
-             f"{'direction':<10}{'method':<12}{'median |error|':>16}{'worst |error|':>15}{'blocks >10%':>13}"]
-    for name in "xyz":
-        valid = errors[name]["valid"]
-        for method, result in errors[name]["static"].items():
-            error = np.abs(result["error"][valid])
-            lines.append(f"{name:<10}{method:<12}{np.median(error):>15.1%}{error.max():>15.1%}"
-                         f"{int((error > 0.1).sum()):>13d}")
-    return "\n".join(lines)
+    return format_static_versus_flow(errors)
 
 
 def _barriers(coarse, label: str) -> str:
@@ -55,43 +46,79 @@ def _barriers(coarse, label: str) -> str:
 
 
 def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
-    """Write the demo field, coarsen it with flow-based upscaling, check the coarse grid
-    against the fine field and write the report.
+    """``upscale demo``: write the demo field, coarsen it, check the coarse grid against the
+    fine field and write the report.
 
-    Returns the paths written: fine, coarse, static, multipliers, summary, figure, report,
-    metrics.
+    Parameters
+    ----------
+    folder : str or Path
+        Where ``fields/`` and ``reports/demo/`` are written.
+    quiet : bool
+        No progress lines.
+
+    Returns
+    -------
+    dict of Path
+        The paths written: fine, coarse, static, multipliers, summary, figure, report, metrics.
     """
-    from .check import run_check
-
     started = time.perf_counter()
-    root = Path(folder)
+    paths = _demo_paths(Path(folder))
+    write(demo_field(), paths["fine"])
+    fine = open_field(paths["fine"])
+    coarse, static = _coarse_grids(fine, paths)
+    cells = arrays(fine)
+    partition = make_partition(cells.shape, ratio=DEMO_RATIO)
+    save(_kx_maps(cells, partition, coarse), paths["figure"])
+    text = _summary(fine, cells, partition, coarse, static, paths)
+    atomic_write(paths["summary"], lambda tmp: Path(tmp).write_text(text + "\n"))
+    print(f"coarse grids written after {time.perf_counter() - started:.0f} s; now the whole-model "
+          "steady and transient checks of the fine and coarse models (a few minutes)", flush=True)
+    run_check(paths["fine"], paths["coarse"], report_dir=paths["report"].parent, transient=DEMO_TRANSIENT,
+              quiet=quiet)
+    print(f"upscale demo finished in {time.perf_counter() - started:.1f} s")
+    for name, path in paths.items():
+        print(f"  {name:<12} {path}")
+    print(f"report: {paths['report']}  (open it in a browser)")
+    return paths
+
+
+def _demo_paths(root: Path) -> dict[str, Path]:
+    """The demo's output paths under ``root``; their folders are created."""
     fields, reports = root / "fields", root / "reports" / "demo"
     fields.mkdir(parents=True, exist_ok=True)
     reports.mkdir(parents=True, exist_ok=True)
-    paths = {"fine": fields / "demo.nc", "coarse": fields / "demo_coarse.nc",
-             "static": fields / "demo_coarse_arithmetic.nc", "multipliers": reports / "multipliers.csv",
-             "summary": reports / "summary.txt", "figure": reports / "fine_coarse_kx.png"}
+    return {"fine": fields / "demo.nc", "coarse": fields / "demo_coarse.nc",
+            "static": fields / "demo_coarse_arithmetic.nc", "multipliers": reports / "multipliers.csv",
+            "summary": reports / "summary.txt", "figure": reports / "fine_coarse_kx.png",
+            "report": reports / "index.html", "metrics": reports / "metrics.json"}
 
-    write(demo_field(), paths["fine"])
-    fine = open_field(paths["fine"])
+
+def _coarse_grids(fine, paths: dict[str, Path]):
+    """The demo's coarse grids, written: flow-based (sealed, with multipliers) and
+    arithmetic (with multipliers, also as a CSV table)."""
     coarse = coarsen(fine, ratio=DEMO_RATIO, method="flow", bc="sealed", multipliers=True)
     write(coarse, paths["coarse"])
     static = coarsen(fine, ratio=DEMO_RATIO, method="arithmetic", multipliers=True)
     write(static, paths["static"])
     face_multipliers = {n: static[f"t{n}_multiplier"].values for n in "xyz"}
     atomic_write(paths["multipliers"], lambda tmp: Path(tmp).write_text(multiplier_csv(face_multipliers)))
+    return coarse, static
 
-    cells = arrays(fine)
-    partition = make_partition(cells.shape, ratio=DEMO_RATIO)
+
+def _kx_maps(cells, partition, coarse):
+    """Fine and coarse kx * ntg on one layer and one section."""
     active_fine = partition.expand(coarse["active"].values.astype(bool))
     kx_effective = partition.expand(coarse_effective(coarse)[0])
-    save(fine_coarse_maps(cells.kx * cells.ntg, cells.active, kx_effective, active_fine,
-                          layer=cells.shape[2] // 3, section_y=cells.shape[1] // 2, label="kx * ntg"),
-         paths["figure"])
+    return fine_coarse_maps(cells.kx * cells.ntg, cells.active, kx_effective, active_fine,
+                            layer=cells.shape[2] // 3, section_y=cells.shape[1] // 2, label="kx * ntg")
 
+
+def _summary(fine, cells, partition, coarse, static, paths: dict[str, Path]) -> str:
+    """The demo's text summary: scenario, caution, field summary, coarse grid, static
+    averages against flow, barriers."""
     fine_pv = float(cells.pore_volume.sum())
     coarse_pv = float(coarse["pore_volume"].values.sum())
-    text = "\n\n".join([
+    return "\n\n".join([
         f"upscale demo: {fine.attrs.get('title', 'synthetic sector')}",
         str(fine.attrs.get("scenario", "")),
         "Caution: " + CAUTION,
@@ -105,14 +132,3 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
         _barriers(coarse, "flow-based (sealed) permeability") + "\n" + _barriers(static, "arithmetic permeability")
         + f"\nAll multipliers of the arithmetic grid: {paths['multipliers']}",
     ])
-    atomic_write(paths["summary"], lambda tmp: Path(tmp).write_text(text + "\n"))
-    print(f"coarse grids written after {time.perf_counter() - started:.0f} s; now the whole-model "
-          "steady and transient checks of the fine and coarse models (a few minutes)", flush=True)
-    run_check(paths["fine"], paths["coarse"], report_dir=reports, transient=DEMO_TRANSIENT, quiet=quiet)
-    paths.update(report=reports / "index.html", metrics=reports / "metrics.json")
-    elapsed = time.perf_counter() - started
-    print(f"upscale demo finished in {elapsed:.1f} s")
-    for name, path in paths.items():
-        print(f"  {name:<12} {path}")
-    print(f"report: {paths['report']}  (open it in a browser)")
-    return paths

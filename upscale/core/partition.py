@@ -4,6 +4,19 @@ A partition holds, per axis, the fine-index edges of the coarse blocks: block ``
 axis ``a`` covers fine cells ``edges[a][I] <= i < edges[a][I + 1]``. Reductions over
 blocks use ``np.add.reduceat`` (no Python loop over blocks); blocks of equal shape are
 gathered into one batch for the local flow solves.
+
+Examples
+--------
+Five cells along x by ratio 2 leave a last block of one cell; edges may be given instead:
+
+>>> import numpy as np
+>>> p = make_partition((5, 2, 1), ratio=(2, 2, 1))
+>>> [e.tolist() for e in p.edges], p.shape
+([[0, 2, 4, 5], [0, 2], [0, 1]], (3, 1, 1))
+>>> p.block_sum(np.ones((5, 2, 1))).ravel().tolist()
+[4.0, 4.0, 2.0]
+>>> make_partition((2, 2, 4), edges={"z": [1, 3]}).edges[2].tolist()
+[0, 1, 3, 4]
 """
 
 from __future__ import annotations
@@ -21,7 +34,16 @@ from .grid import AXES
 
 @dataclass(frozen=True)
 class Partition:
-    """Fine-index edges per axis (each starts at 0 and ends at the fine size)."""
+    """A coarse partition of a fine grid.
+
+    Attributes
+    ----------
+    edges : tuple of ndarray
+        Per axis, the fine-index edges of the blocks: 0, ..., the fine size, strictly
+        increasing; block I covers fine cells edges[I] <= i < edges[I + 1].
+    ratio : tuple
+        Per axis, the uniform ratio the edges came from, or None for given edges.
+    """
 
     edges: tuple[np.ndarray, np.ndarray, np.ndarray]
     ratio: tuple[int | None, int | None, int | None] = (None, None, None)
@@ -122,7 +144,7 @@ def _check_ratio(ratio, shape) -> tuple[int, int, int]:
     return tuple(out)
 
 
-def check_edges(name: str, edges, n: int) -> np.ndarray:
+def _check_edges(name: str, edges, n: int) -> np.ndarray:
     values = np.asarray(list(edges), dtype=float)
     if values.size == 0 or not np.all(values == np.round(values)):
         raise InputError(f"edges along {name} must be whole fine-cell indices, got {list(edges)}")
@@ -139,11 +161,23 @@ def check_edges(name: str, edges, n: int) -> np.ndarray:
 
 
 def make_partition(shape, ratio=None, edges: dict | None = None) -> Partition:
-    """Partition a fine grid of ``shape`` by ``ratio`` (rx, ry, rz), by ``edges``, or both.
+    """Partition a fine grid by ratios, by fine-index edges, or both.
 
-    ``edges`` maps an axis name to fine-index edges, e.g. ``{"z": [0, 3, 10, 20]}``; 0 and
-    the fine size are added when missing. Axes without edges use the ratio (1 if none).
-    A ratio that does not divide the size leaves a smaller last block.
+    Parameters
+    ----------
+    shape : tuple of int
+        (nx, ny, nz) of the fine grid.
+    ratio : tuple of int, optional
+        (rx, ry, rz) fine cells per block (1 where not given); one that does not divide
+        the size leaves a smaller last block.
+    edges : dict, optional
+        Axis name -> fine-index edges, e.g. ``{"z": [0, 3, 10, 20]}``; 0 and the fine size
+        are added when missing. These axes ignore the ratio.
+
+    Returns
+    -------
+    Partition
+        InputError names the axis of a bad ratio or bad edges.
     """
     shape = tuple(int(n) for n in shape)
     edges = dict(edges or {})
@@ -154,7 +188,7 @@ def make_partition(shape, ratio=None, edges: dict | None = None) -> Partition:
     out, used = [], []
     for axis, name in enumerate(AXES):
         if name in edges:
-            out.append(check_edges(name, edges[name], shape[axis]))
+            out.append(_check_edges(name, edges[name], shape[axis]))
             used.append(None)
         else:
             out.append(np.unique(np.append(np.arange(0, shape[axis], ratio[axis]), shape[axis])))

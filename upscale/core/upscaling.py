@@ -100,71 +100,125 @@ def make_recipe(method="flow", bc: str = "sealed", border: int = 0, omega: float
 
 def block_variables(cells: GridArrays, partition: Partition, blocks: tuple[slice, slice, slice],
                     recipe: Recipe, progress=None, budget: int = BATCH_BYTES) -> dict[str, np.ndarray]:
-    """Everything ``coarsen`` writes per coarse block, for the box ``blocks`` (coarse index
-    slices of ``partition``), from ``cells``, which hold the box and its halo
-    (:meth:`Recipe.halo`).
+    """Everything a coarse grid holds per block, for a box of whole blocks.
 
-    Per block: dz, kx, ky, kz (and kxy, kxz, kyz), porosity, ntg, pore and bulk volume,
-    active, the Cardwell-Parsons bounds, solve residuals; ``half_x`` ... half-cell
-    transmissibilities in the recipe's units (for the faces); with multipliers
-    ``tx_flow`` ... on the faces after each block of the box (none after the grid's last).
+    Parameters
+    ----------
+    cells : GridArrays
+        The fine cells of the box and its halo (:meth:`Recipe.halo`), or of the whole grid.
+    partition : Partition
+        The partition of ``cells``.
+    blocks : tuple of slice
+        The box: coarse index slices of ``partition`` per axis.
+    recipe : Recipe
+        What to compute.
+    progress : callable, optional
+        Receives the number of blocks finished by each batch of local solves.
+    budget : int
+        Bytes one batch of local solves may hold.
+
+    Returns
+    -------
+    dict of ndarray
+        Per block of the box (shape of the box in blocks): dz (m), kx, ky, kz and with a full
+        tensor kxy, kxz, kyz (mD, the net convention of the coarse grid schema), porosity,
+        ntg, pore_volume and bulk_volume (m3), active, the Cardwell-Parsons bounds
+        ``kx_lower_bound`` ... (mD), ``solve_residual`` and ``tensor_asymmetry`` where
+        solves ran, ``half_x`` ... half-cell transmissibilities in the recipe's units (for
+        the faces); with multipliers ``tx_flow`` ... on the faces after each block of the box
+        (none after the grid's last).
     """
     box = tuple(slice(int(partition.edges[a][b.start]), int(partition.edges[a][b.stop])) for a, b in enumerate(blocks))
-    core = cells.crop(box)
-    core_partition = partition.crop(blocks)
-    shape = core_partition.shape
-    only = tuple(np.arange(b.start, b.stop) for b in blocks)
+    core, core_partition = cells.crop(box), partition.crop(blocks)
+    solves = dict(border=recipe.border, progress=progress, budget=budget,
+                  only=tuple(np.arange(b.start, b.stop) for b in blocks))
+    flow, faces = _local_solves(cells, partition, recipe, solves)
     volumes = _volumes(core, core_partition)
-    k_flow = core.flow_permeability()
-    weight = core.bulk_volume * core.active
-    effective = np.zeros(shape + (3, 3))
-    out = {}
-    solves = dict(border=recipe.border, progress=progress, budget=budget, only=only)
-    together = recipe.flow and recipe.multipliers and recipe.bc == "sealed"
-    if together:  # the sealed solves share their elimination with the face problems
-        flow, faces, residuals = sealed_and_face_flow(cells, partition, units=recipe.units, **solves)
-    elif recipe.flow:
-        flow = flow_tensors(cells, partition, bc=recipe.bc, **solves)
-    if recipe.flow:
-        effective[:] = flow.tensor[blocks]
+    k = _effective_tensors(core, core_partition, recipe, None if flow is None else flow.tensor[blocks])
+    k = np.where(volumes["active"][..., None, None], k, 0.0)
+    out = _stored_values(core, core_partition, recipe, k, volumes)
+    if flow is not None:
         out["solve_residual"] = flow.residual[blocks]
         if recipe.bc == "linear":
             out["tensor_asymmetry"] = flow.asymmetry[blocks]
+    out.update(_bounds_and_halves(core, core_partition, recipe, k, out["dz"]))
+    if faces is not None:
+        out.update(_faces_of_the_box(faces, blocks, partition, out.get("solve_residual")))
+    return out
+
+
+def _local_solves(cells: GridArrays, partition: Partition, recipe: Recipe, solves: dict):
+    """The flow-based block tensors (a FlowResult, or None) and face values ((faces,
+    residuals) per axis, or None) the recipe asks for; with the sealed condition and
+    multipliers both in one pass, sharing their elimination."""
+    flow = faces = None
+    if recipe.flow and recipe.multipliers and recipe.bc == "sealed":
+        flow, *faces = sealed_and_face_flow(cells, partition, units=recipe.units, **solves)
+    elif recipe.flow:
+        flow = flow_tensors(cells, partition, bc=recipe.bc, **solves)
+    if recipe.multipliers and faces is None:
+        faces = flow_transmissibility(cells, partition, units=recipe.units, **solves)
+    return flow, faces
+
+
+def _effective_tensors(core: GridArrays, core_partition: Partition, recipe: Recipe, flow_tensor) -> np.ndarray:
+    """Effective tensors (NX, NY, NZ, 3, 3), mD: flow-based where the recipe says flow, the
+    static average elsewhere on the diagonal; diagonal only unless a full tensor is kept."""
+    effective = np.zeros(core_partition.shape + (3, 3)) if flow_tensor is None else flow_tensor.copy()
+    k_flow = core.flow_permeability()
+    weight = core.bulk_volume * core.active
     for axis, name in enumerate(recipe.methods):
         if name != "flow":
             effective[..., axis, axis] = static_average(k_flow[axis], weight, core_partition, name, recipe.omega)
-    if not recipe.full:
-        effective *= np.eye(3)
-    active = volumes["active"]
-    k = np.where(active[..., None, None], effective, 0.0)
-    # Net convention: horizontal components are divided by ntg, vertical ones are effective.
+    return effective if recipe.full else effective * np.eye(3)
+
+
+def _stored_values(core: GridArrays, core_partition: Partition, recipe: Recipe, k: np.ndarray,
+                   volumes: dict) -> dict[str, np.ndarray]:
+    """The permeabilities as stored (horizontal components net: divided by ntg), the
+    coarse thickness and the volumes."""
     net = np.where(HORIZONTAL, divide_or_zero(k, volumes["ntg"][..., None, None]), k)
-    dx = np.add.reduceat(core.dx, core_partition.edges[0][:-1])
-    dy = np.add.reduceat(core.dy, core_partition.edges[1][:-1])
-    dz = block_length(core_partition, core.dx, core.dy, core.dz, 2)
-    out.update(dz=dz, kx=net[..., 0, 0], ky=net[..., 1, 1], kz=net[..., 2, 2], porosity=volumes["porosity"],
-               ntg=volumes["ntg"], pore_volume=volumes["pore"], bulk_volume=volumes["bulk"],
-               active=active.astype(np.int8))
+    out = dict(dz=block_length(core_partition, core.dx, core.dy, core.dz, 2), kx=net[..., 0, 0],
+               ky=net[..., 1, 1], kz=net[..., 2, 2], porosity=volumes["porosity"], ntg=volumes["ntg"],
+               pore_volume=volumes["pore"], bulk_volume=volumes["bulk"], active=volumes["active"].astype(np.int8))
     if recipe.full:
         out.update(kxy=net[..., 0, 1], kxz=net[..., 0, 2], kyz=net[..., 1, 2])
+    return out
+
+
+def _bounds_and_halves(core: GridArrays, core_partition: Partition, recipe: Recipe, k: np.ndarray,
+                       dz: np.ndarray) -> dict[str, np.ndarray]:
+    """Per axis the Cardwell-Parsons bounds (mD) and the coarse half-cell
+    transmissibilities of the effective permeability, in the recipe's units."""
     _, constant, to_length = unit_system(recipe.units)
+    dx = np.add.reduceat(core.dx, core_partition.edges[0][:-1])
+    dy = np.add.reduceat(core.dy, core_partition.edges[1][:-1])
     volume, lengths = cell_geometry(dx, dy, dz)
+    k_flow = core.flow_permeability()
+    out = {}
     for axis, name in enumerate(AXES):
         lower, upper = cardwell_parsons(k_flow[axis], core.dx, core.dy, core.dz, core_partition, axis)
         out[f"k{name}_lower_bound"], out[f"k{name}_upper_bound"] = lower, upper
         # T scales with length (A / L): mD*m -> mD*ft multiplies by the metres-to-feet factor.
         out[f"half_{name}"] = constant * to_length * half_transmissibility(k[..., axis, axis], volume, lengths[axis])
-    if recipe.multipliers:
-        if not together:
-            faces, residuals = flow_transmissibility(cells, partition, units=recipe.units, **solves)
-        residual = out.get("solve_residual", np.zeros(shape))
-        for axis, name in enumerate(AXES):
-            owned = list(blocks)
-            owned[axis] = slice(blocks[axis].start, min(blocks[axis].stop, partition.shape[axis] - 1))
-            out[f"t{name}_flow"] = faces[axis][tuple(owned)]
-            local = tuple(slice(0, o.stop - o.start) for o in owned)
-            residual[local] = np.maximum(residual[local], residuals[axis][tuple(owned)])
-        out["solve_residual"] = residual
+    return out
+
+
+def _faces_of_the_box(faces, blocks: tuple[slice, slice, slice], partition: Partition,
+                      residual: np.ndarray | None) -> dict[str, np.ndarray]:
+    """The flow-based face values after each block of the box (``tx_flow`` ...), and the
+    blocks' residuals raised to those of their face problems."""
+    values, residuals = faces
+    shape = tuple(b.stop - b.start for b in blocks)
+    residual = np.zeros(shape) if residual is None else residual.copy()
+    out = {}
+    for axis, name in enumerate(AXES):
+        owned = list(blocks)
+        owned[axis] = slice(blocks[axis].start, min(blocks[axis].stop, partition.shape[axis] - 1))
+        out[f"t{name}_flow"] = values[axis][tuple(owned)]
+        local = tuple(slice(0, o.stop - o.start) for o in owned)
+        residual[local] = np.maximum(residual[local], residuals[axis][tuple(owned)])
+    out["solve_residual"] = residual
     return out
 
 

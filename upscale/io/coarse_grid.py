@@ -11,7 +11,7 @@ from datetime import datetime, timezone
 import numpy as np
 import xarray as xr
 
-from ..about import tool_version
+from ..about import CAUTION, tool_version
 from ..core.face_problems import multipliers as face_multipliers
 from ..core.grid import AXES
 from ..core.partition import Partition
@@ -149,7 +149,7 @@ def _provenance(fine: xr.Dataset, partition: Partition, recipe: Recipe) -> dict:
         "input_file": fine.attrs.get("source_path", ""),
         "input_sha256": fine.attrs.get("source_sha256", ""),
         "created": datetime.now(timezone.utc).isoformat(timespec="seconds"),
-        "caution": "screening tool: results are to be reviewed by a qualified engineer",
+        "caution": CAUTION,
     }
     if omega is not None:
         attrs["omega"] = float(omega)

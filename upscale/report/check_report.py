@@ -7,6 +7,12 @@ from __future__ import annotations
 import html
 from pathlib import Path
 
+import numpy as np
+
+from ..core.layering import layer_statistics
+from ..io.coarse_file import coarse_effective
+from . import figures
+from .figures import layer_profile_figure
 from .page import figure_html, table, write_report
 
 
@@ -32,14 +38,12 @@ def _global_section(metrics: dict) -> str:
             "faces normal to the axis; the coarse model uses the coarse file's transmissibilities "
             "and multipliers. Pressure RMS: coarse pressures against the bulk-weighted block "
             "averages of the fine pressures, as a fraction of the drop.</p>")
-    shares = []
-    for axis, share in metrics.get("layer_flow_share", {}).items():
-        for layer, (f, c) in enumerate(zip(share["fine"], share["coarse"])):
-            shares.append([f"along {axis}", layer, f, c, None if f is None or c is None else c - f])
+    shares = metrics.get("layer_flow_share") or {}
     return (text + table(["flow", "fine k (mD)", "coarse k (mD)", "relative error", "pressure RMS",
                           "fine residual", "coarse residual"], rows)
-            + "<p>Share of the total flow carried by each coarse layer:</p>"
-            + table(["flow", "coarse layer", "fine", "coarse", "difference"], shares, 1))
+            + (figure_html(figures.layer_flow_shares(shares), "Share of the total flow carried by each coarse "
+                           "layer, fine and coarse (the fine layers summed onto the coarse ones).")
+               if shares else ""))
 
 
 def _block_section(metrics: dict) -> str:
@@ -108,13 +112,6 @@ def _multiplier_section(metrics: dict) -> str:
 
 def build_report(folder, metrics: dict, arrays: dict) -> dict[str, Path]:
     """Compose the figures and tables of ``upscale check`` and write the report."""
-    import numpy as np
-
-    from ..core.layering import layer_statistics
-    from ..io.coarse_file import coarse_effective
-    from . import figures
-    from .figures import layer_profile_figure
-
     cells, partition, coarse = arrays["cells"], arrays["partition"], arrays["coarse"]
     errors = arrays["blocks"]
     coarse_k = dict(zip(("x", "y", "z"), coarse_effective(coarse)))

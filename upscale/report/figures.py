@@ -142,6 +142,27 @@ def whole_model_bars(global_check: dict) -> Figure:
     return figure
 
 
+def layer_flow_shares(shares: dict) -> Figure:
+    """Share of the total flow carried by each coarse layer, fine against coarse: one
+    panel per flow direction (``metrics["layer_flow_share"]``), layers downward."""
+    names = [a for a in AXES if a in shares]
+    figure = Figure(figsize=(4.0 * max(len(names), 1), 5), layout="constrained")
+    panels = np.atleast_1d(figure.subplots(1, max(len(names), 1), sharey=True))
+    for ax, name in zip(panels, names):
+        fine = np.array([np.nan if v is None else v for v in shares[name]["fine"]], dtype=float)
+        coarse = np.array([np.nan if v is None else v for v in shares[name]["coarse"]], dtype=float)
+        layer = np.arange(fine.size)
+        ax.barh(layer - 0.2, fine, 0.4, label="fine")
+        ax.barh(layer + 0.2, coarse, 0.4, label="coarse")
+        ax.set_title(f"flow along {name}")
+        ax.set_xlabel("share of the total flow")
+        ax.grid(True, axis="x", alpha=0.3)
+    panels[0].set_ylabel("coarse layer (top = 0)")
+    panels[0].invert_yaxis()
+    panels[0].legend(loc="best", fontsize="small")
+    return figure
+
+
 def transient_curves(result: dict) -> Figure:
     """Drainage rate and cumulative volume over time, fine against coarse."""
     figure = Figure(figsize=(11, 4), layout="constrained")

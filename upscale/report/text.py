@@ -149,3 +149,28 @@ def format_comparison(result: dict) -> str:
         wide = [max(len(row[i]) for row in table) for i in range(len(columns))]
         out += ["  ".join(cell.rjust(wd) for cell, wd in zip(row, wide)) for row in table]
     return "\n".join(out) + "\n"
+
+
+def relative_error_text(error: float, signed: bool = True) -> str:
+    """A relative error as a percentage (signed unless ``signed`` is False), or beyond
+    1000 % as the factor it stands for, 1 + error: ``+12.5%``, ``x 2.7e+05``."""
+    if abs(error) > 10.0:
+        return f"x {1.0 + error:.2g}"
+    return f"{error:+.1%}" if signed else f"{error:.1%}"
+
+
+def format_static_versus_flow(errors: dict) -> str:
+    """Per direction and static method, the median and the largest relative error of the
+    static average against the flow-based value over the blocks, and the blocks off by
+    more than 10 %; ``errors`` is the arrays part of
+    :func:`upscale.checks.blocks.block_errors`."""
+    lines = ["Static averages against flow-based (sealed) permeability, per coarse block:",
+             f"{'direction':<10}{'method':<12}{'median |error|':>16}{'largest error':>15}{'blocks >10%':>13}"]
+    for name in AXES:
+        valid = errors[name]["valid"]
+        for method, result in errors[name]["static"].items():
+            error = result["error"][valid]
+            worst = float(error[np.argmax(np.abs(error))]) if error.size else 0.0
+            lines.append(f"{name:<10}{method:<12}{relative_error_text(float(np.median(np.abs(error))), signed=False):>16}"
+                         f"{relative_error_text(worst):>15}{int((np.abs(error) > 0.1).sum()):>13d}")
+    return "\n".join(lines)

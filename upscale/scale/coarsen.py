@@ -10,31 +10,52 @@ from ..core.upscaling import block_variables, make_recipe
 from ..io.coarse_grid import assemble, warn_flagged
 from ..io.schema import arrays
 from ..io.validation import validate
+from .boxes import lazy_block_variables
 
 
 def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flow",
             bc: str = "sealed", border: int = 0, omega: float | None = None,
             multipliers: bool = False, units: str = "metric", progress=None,
             memory: int | None = None, box: tuple[int, int, int] | None = None) -> xr.Dataset:
-    """Coarsen a fine field.
+    """``upscale.coarsen``: the coarse grid of a fine field.
 
-    ratio: (rx, ry, rz) fine cells per coarse cell (remainders give a smaller last block);
-    edges: fine-index edges per axis, e.g. ``{"z": [0, 3, 10, 20]}``; method: one of
-    arithmetic, harmonic, geometric, power (with ``omega``) or flow, or one per axis
-    ("arithmetic,arithmetic,harmonic" or a dict); bc, border: local boundary condition and
-    border ring (fine cells) for ``flow``; multipliers: compute flow-based transmissibility
-    multipliers; units: transmissibility units, metric or field.
+    Parameters
+    ----------
+    fine : xarray.Dataset
+        A field in the schema (``open_field``); a lazy one (``open_field(path, chunks=...)``)
+        gives a lazy result, computed when written (:func:`upscale.write`) or loaded.
+    ratio : tuple of int, optional
+        (rx, ry, rz) fine cells per coarse cell; remainders give a smaller last block.
+    edges : dict, optional
+        Fine-index edges per axis, e.g. ``{"z": [0, 3, 10, 20]}`` (groups of layers).
+    method : str or dict
+        arithmetic, harmonic, geometric, power (with ``omega``) or flow; or one per axis,
+        "arithmetic,arithmetic,harmonic" or ``{"x": ..., "y": ..., "z": ...}``.
+    bc : str
+        Boundary condition of the local problems for ``flow``: sealed, periodic or linear.
+    border : int
+        Fine cells of the border ring around each block's local problem.
+    omega : float, optional
+        The power-average exponent.
+    multipliers : bool
+        Compute flow-based transmissibility multipliers (two-block problems).
+    units : str
+        Transmissibility units, metric (m3*cP/(day*bar)) or field (rb*cP/(day*psi)).
+    progress : callable, optional
+        In-memory fields: receives the number of blocks finished by each batch of solves.
+    memory : int, optional
+        Lazy fields: bytes a process holding one box may use (sizes the boxes).
+    box : tuple of int, optional
+        Lazy fields: coarse blocks per box along x, y, z instead.
 
-    A lazy field (``open_field(path, chunks=...)``) gives a lazy result, computed when
-    written (:func:`upscale.write`) or loaded: boxes of ``box`` whole coarse blocks per
-    axis, or sized so that a process holding one stays within ``memory`` bytes
-    (:mod:`upscale.parallel`). ``progress`` (in-memory fields only) receives the number
-    of blocks finished by each batch of local solves.
+    Returns
+    -------
+    xarray.Dataset
+        The coarse grid (coarse grid schema: itself a valid field, with face
+        transmissibilities, multipliers, fine-index ranges and provenance).
     """
     recipe = make_recipe(method, bc, border, omega, multipliers, units)
     if is_lazy(fine):
-        from .boxes import lazy_block_variables
-
         if "length_units_in" not in fine.attrs:  # not from open_field / validate: check it (one pass)
             fine = validate(fine)
         partition = make_partition(tuple(fine.sizes[d] for d in AXES), ratio=ratio, edges=edges)
