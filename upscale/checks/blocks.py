@@ -15,6 +15,7 @@ TOLERANCE = 0.10
 
 
 def _distribution(values: np.ndarray) -> dict:
+    """Median, 90th percentile and largest of the magnitudes; None for no values."""
     if values.size == 0:
         return {"median": None, "p90": None, "max": None}
     magnitude = np.abs(values)
@@ -26,10 +27,26 @@ def block_errors(cells: GridArrays, partition: Partition, flow_k, tolerance: flo
                  worst: int = 5) -> tuple[dict, dict]:
     """Each static average against the flow-based value per block and direction.
 
-    ``flow_k``: effective flow-based permeability per axis (NX, NY, NZ), mD. Returns
-    (summary for metrics.json, arrays for figures). A block is flagged when a static
-    average misses the flow value by more than ``tolerance`` (relative) or falls outside
-    the Cardwell-Parsons bounds.
+    A block is flagged when a static average misses the flow value by more than
+    ``tolerance`` (relative) or falls outside the Cardwell-Parsons bounds.
+
+    Parameters
+    ----------
+    cells : GridArrays
+        The fine field.
+    partition : Partition
+        The coarse blocks.
+    flow_k : sequence of numpy.ndarray
+        Effective flow-based permeability per axis, each (NX, NY, NZ), mD.
+    tolerance : float
+        Relative error beyond which a block is flagged.
+    worst : int
+        Blocks listed with the largest errors, per method and direction.
+
+    Returns
+    -------
+    tuple of dict
+        (summary for metrics.json, arrays for figures), each by direction x, y, z.
     """
     k = cells.flow_permeability()
     weight = cells.bulk_volume * cells.active
@@ -64,8 +81,24 @@ def block_errors(cells: GridArrays, partition: Partition, flow_k, tolerance: flo
 
 
 def flow_reference(cells: GridArrays, partition: Partition, coarse: xr.Dataset):
-    """The flow-based permeability per block: the coarse file's own values when it was
-    built with sealed flow upscaling, otherwise a fresh sealed computation."""
+    """The flow-based permeability per block.
+
+    Parameters
+    ----------
+    cells : GridArrays
+        The fine field.
+    partition : Partition
+        The coarse blocks.
+    coarse : xarray.Dataset
+        The coarse grid.
+
+    Returns
+    -------
+    tuple
+        (kx, ky, kz per block (NX, NY, NZ), mD; where they come from): the coarse file's
+        own values when it was built with sealed flow upscaling and no border, otherwise a
+        fresh sealed computation.
+    """
     if coarse.attrs.get("method") == "flow" and coarse.attrs.get("boundary_condition") == "sealed" \
             and int(coarse.attrs.get("border", 0)) == 0:
         return coarse_effective(coarse), "coarse file (flow, sealed)"

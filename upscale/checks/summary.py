@@ -40,6 +40,7 @@ FLOW_PERMEABILITY = {"x": "kx*ntg", "y": "ky*ntg", "z": "kz"}
 
 
 def _range(values: np.ndarray) -> dict:
+    """min and max of the values."""
     return {"min": float(values.min()), "max": float(values.max())}
 
 
@@ -51,6 +52,7 @@ def _cell_statistics(values: np.ndarray) -> dict:
 
 
 def _is_transmissibility(name: str, variable: xr.DataArray) -> bool:
+    """Whether a variable is tx, ty, tz or tx_*, ty_*, tz_* on face dimensions."""
     on_faces = any(d in FACE_DIMS for d in variable.dims)
     return on_faces and (name in TRANSMISSIBILITY or name.startswith(tuple(t + "_" for t in TRANSMISSIBILITY)))
 
@@ -84,72 +86,99 @@ def _pinched_between_active(dz: np.ndarray, active: np.ndarray) -> int:
 
 
 def field_summary(ds: xr.Dataset) -> dict:
-    """Summarise a normalised field (from :func:`upscale.field.open_field` or ``validate``).
+    """Summarise a normalised field (from :func:`upscale.io.reading.open_field` or ``validate``).
 
-    Keys: ``shape`` [nx, ny, nz]; ``cells``, ``active_cells``, ``pinched_cells`` (dz == 0,
-    active or not), ``pinched_between_active`` (those with an active cell above and below in
-    their column); ``sizes`` (m): dx, dy, dz min/max over all cells, ``dz_min_positive``,
-    ``length_x`` = sum dx, ``length_y`` = sum dy, and ``thickness`` min/max/mean over columns
-    of the column total sum(dz); ``values``: for kx, ky, kz (mD), porosity, ntg (fractions)
-    the min, p10, p50, p90, max and mean over active cells, each cell counting once (numpy's
-    default linear percentiles); ``volumes`` (m3): ``bulk`` (all cells), ``active_bulk``,
-    ``pore`` (porosity * ntg * bulk over active cells); ``heterogeneity``: for x, y, z the
-    flow permeability kx*ntg, ky*ntg, kz over active cells with coefficient of variation and
-    Dykstra-Parsons weighted by cell bulk volume, and the Lorenz coefficient with h = dz and
-    the cell's pore-volume porosity porosity * ntg (so that net-to-gross alone, which scales
-    flow and storage alike, does not count as heterogeneity); ``transmissibility``: for each
-    face variable tx, ty, tz, tx_*, ty_*, tz_* present, its dims, units, count, min/max/mean
-    over finite values.
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        A normalised field or coarse grid.
+
+    Returns
+    -------
+    dict
+        ``shape`` [nx, ny, nz]; ``cells``, ``active_cells``, ``pinched_cells`` (dz == 0,
+        active or not), ``pinched_between_active`` (those with an active cell above and
+        below in their column); ``sizes`` (m): dx, dy, dz min/max over all cells,
+        ``dz_min_positive``, ``length_x`` = sum dx, ``length_y`` = sum dy, and
+        ``thickness`` min/max/mean over columns of the column total sum(dz); ``values``:
+        for kx, ky, kz (mD), porosity, ntg (fractions) the min, p10, p50, p90, max and mean
+        over active cells, each cell counting once (numpy's default linear percentiles);
+        ``volumes`` (m3): ``bulk`` (all cells), ``active_bulk``, ``pore`` (porosity * ntg *
+        bulk over active cells); ``heterogeneity``: for x, y, z the flow permeability
+        kx*ntg, ky*ntg, kz over active cells with coefficient of variation and
+        Dykstra-Parsons weighted by cell bulk volume, and the Lorenz coefficient with h =
+        dz and the cell's pore-volume porosity porosity * ntg (so that net-to-gross alone,
+        which scales flow and storage alike, does not count as heterogeneity);
+        ``transmissibility``: for each face variable tx, ty, tz, tx_*, ty_*, tz_* present,
+        its dims, units, count, min/max/mean over finite values.
     """
     missing = [n for n in ("dx", "dy", "dz", *CELL_VALUES, "active") if n not in ds]
     if missing:
         raise InputError(f"field summary: missing variable(s) {', '.join(missing)}; "
                          f"read the field with open_field() or pass it through validate() first")
     fine = arrays(ds)
-    active = fine.active
-    bulk = fine.bulk_volume
-    column = fine.dz.sum(axis=2)
-    positive_dz = fine.dz[fine.dz > 0]
-
-    summary: dict = {
-        "shape": [int(n) for n in fine.shape],
-        "cells": int(active.size),
-        "active_cells": int(np.count_nonzero(active)),
-        "pinched_cells": int(np.count_nonzero(fine.dz == 0)),
-        "pinched_between_active": _pinched_between_active(fine.dz, active),
-        "sizes": {
-            "units": "m",
-            "dx": _range(fine.dx),
-            "dy": _range(fine.dy),
-            "dz": _range(fine.dz),
-            "dz_min_positive": float(positive_dz.min()) if positive_dz.size else math.nan,
-            "length_x": float(fine.dx.sum()),
-            "length_y": float(fine.dy.sum()),
-            "thickness": {**_range(column), "mean": float(column.mean())},
-        },
-        "values": {},
-        "volumes": {
-            "units": "m3",
-            "bulk": float(bulk.sum()),
-            "active_bulk": float(bulk[active].sum()),
-            "pore": float(fine.pore_volume.sum()),
-        },
-        "heterogeneity": {},
+    return {
+        **_counts(fine),
+        "sizes": _sizes(fine),
+        "values": {name: {"units": UNITS[name], **_cell_statistics(getattr(fine, name)[fine.active])}
+                   for name in CELL_VALUES},
+        "volumes": _volumes(fine),
+        "heterogeneity": _heterogeneity(fine),
         "transmissibility": _transmissibility(ds),
     }
-    for name in CELL_VALUES:
-        values = getattr(fine, name)[active]
-        summary["values"][name] = {"units": UNITS[name], **_cell_statistics(values)}
 
-    weight = bulk[active]
+
+def _counts(fine) -> dict:
+    """Shape, cells, active cells, pinched cells and those between active cells."""
+    return {
+        "shape": [int(n) for n in fine.shape],
+        "cells": int(fine.active.size),
+        "active_cells": int(np.count_nonzero(fine.active)),
+        "pinched_cells": int(np.count_nonzero(fine.dz == 0)),
+        "pinched_between_active": _pinched_between_active(fine.dz, fine.active),
+    }
+
+
+def _sizes(fine) -> dict:
+    """Cell size ranges, model lengths and column thickness, m."""
+    column = fine.dz.sum(axis=2)
+    positive_dz = fine.dz[fine.dz > 0]
+    return {
+        "units": "m",
+        "dx": _range(fine.dx),
+        "dy": _range(fine.dy),
+        "dz": _range(fine.dz),
+        "dz_min_positive": float(positive_dz.min()) if positive_dz.size else math.nan,
+        "length_x": float(fine.dx.sum()),
+        "length_y": float(fine.dy.sum()),
+        "thickness": {**_range(column), "mean": float(column.mean())},
+    }
+
+
+def _volumes(fine) -> dict:
+    """Bulk volume of all cells and of the active ones, pore volume, m3."""
+    bulk = fine.bulk_volume
+    return {
+        "units": "m3",
+        "bulk": float(bulk.sum()),
+        "active_bulk": float(bulk[fine.active].sum()),
+        "pore": float(fine.pore_volume.sum()),
+    }
+
+
+def _heterogeneity(fine) -> dict:
+    """Per axis, the heterogeneity measures of the flow permeability over active cells."""
+    active = fine.active
+    weight = fine.bulk_volume[active]
     storage_porosity = (fine.porosity * fine.ntg)[active]
     thickness = fine.dz[active]
+    out = {}
     for axis, k in zip(AXES, fine.flow_permeability()):
         k = k[active]
-        summary["heterogeneity"][axis] = {
+        out[axis] = {
             "permeability": FLOW_PERMEABILITY[axis],
             "coefficient_of_variation": coefficient_of_variation(k, weight),
             "dykstra_parsons": dykstra_parsons(k, weight),
             "lorenz": lorenz(k, storage_porosity, thickness),
         }
-    return summary
+    return out

@@ -46,14 +46,35 @@ from ..io.validation import validate
 
 
 def coarse_system(coarse: xr.Dataset, drainage: str = "face", face: str = "x-", column=None,
-                fine_shape=None, well_radius: float = DEFAULT_WELL_RADIUS) -> TransientSystem:
-    """The coarse model: the file's face transmissibilities (times multipliers) in metric,
-    its ``pore_volume``, and the drainage connection from the coarse cells' effective
+                  fine_shape=None, well_radius: float = DEFAULT_WELL_RADIUS) -> TransientSystem:
+    """The coarse model of the transient check.
+
+    The file's face transmissibilities (times multipliers) in metric, its
+    ``pore_volume``, and the drainage connection from the coarse cells' effective
     permeability and sizes (see the module notes).
 
-    For 'well', ``column`` is the fine (i, j); the coarse column holding it is found from
-    the file's ``x_start``/``x_stop``, ``y_start``/``y_stop``; with ``column`` None, the
-    fine grid centre (fine shape from ``fine_shape`` or the file's ``fine_shape`` attribute).
+    Parameters
+    ----------
+    coarse : xarray.Dataset
+        A coarse grid file's dataset.
+    drainage : str
+        "face" or "well".
+    face : str
+        The drained face for "face": "x-", "x+", "y-", "y+", "z-" or "z+".
+    column : tuple of int, optional
+        For "well", the fine column (i, j); the coarse column holding it is found from
+        the file's ``x_start``/``x_stop``, ``y_start``/``y_stop``. None: the fine grid
+        centre.
+    fine_shape : tuple of int, optional
+        (nx, ny, nz) of the fine grid; None: the file's ``fine_shape`` attribute, else the
+        end of its fine-index ranges.
+    well_radius : float
+        Well radius r_w, m.
+
+    Returns
+    -------
+    TransientSystem
+        The coarse model, its ``description`` naming the set-up and the connection.
     """
     ds = validate(coarse, where="coarse grid")
     cells = arrays(ds)
@@ -68,33 +89,47 @@ def coarse_system(coarse: xr.Dataset, drainage: str = "face", face: str = "x-", 
     description = {"model": "coarse", "drainage": drainage,
                    "transmissibility_units_in": coarse_units(ds)}
     if drainage == "face":
-        axis, high = drainage_face(face)
-        volume, lengths = cell_geometry(cells.dx, cells.dy, cells.dz)
-        half = METRIC_TRANSMISSIBILITY * half_transmissibility(k[axis], volume, lengths[axis])
-        drain_t = face_connection(half, axis, high)
+        drain_t = _face_drain(cells, k, face)
         description["face"] = face
     else:
-        if fine_shape is None and "fine_shape" in ds.attrs:
-            written = str(ds.attrs["fine_shape"])
-            try:
-                fine_shape = tuple(int(v) for v in written.split())
-            except ValueError:
-                raise InputError(f"coarse grid: attribute 'fine_shape' is {written!r}, not three whole "
-                                 f"numbers") from None
-        edges = coarse_partition(ds, fine_shape).edges
-        i, j = well_column(column, fine_shape or tuple(int(e[-1]) for e in edges))
-        ci = int(np.searchsorted(edges[0], i, side="right") - 1)
-        cj = int(np.searchsorted(edges[1], j, side="right") - 1)
-        drain_t = np.zeros(cells.shape)
-        drain_t[ci, cj, :] = well_factors(k[0][ci, cj], k[1][ci, cj], cells.dx[ci], cells.dy[cj],
-                                          cells.dz[ci, cj], well_radius)
-        description.update(column=[i, j], coarse_column=[ci, cj], well_radius=float(well_radius))
+        drain_t = _well_drain(ds, cells, k, column, fine_shape, well_radius, description)
     system = TransientSystem.from_arrays(pore_volume, faces, drain_t, description)
     system.description.update(connection_summary(drain_t))
     return system
 
 
+def _face_drain(cells, k, face: str) -> np.ndarray:
+    """Drainage connection of the coarse cells on ``face``: their half-cell
+    transmissibility along the face's axis, metric."""
+    axis, high = drainage_face(face)
+    volume, lengths = cell_geometry(cells.dx, cells.dy, cells.dz)
+    half = METRIC_TRANSMISSIBILITY * half_transmissibility(k[axis], volume, lengths[axis])
+    return face_connection(half, axis, high)
+
+
+def _well_drain(ds: xr.Dataset, cells, k, column, fine_shape, well_radius: float, description: dict) -> np.ndarray:
+    """Drainage connection of the coarse column holding the fine well column; adds the
+    fine and coarse columns and the well radius to ``description``."""
+    if fine_shape is None and "fine_shape" in ds.attrs:
+        written = str(ds.attrs["fine_shape"])
+        try:
+            fine_shape = tuple(int(v) for v in written.split())
+        except ValueError:
+            raise InputError(f"coarse grid: attribute 'fine_shape' is {written!r}, not three whole "
+                             f"numbers") from None
+    edges = coarse_partition(ds, fine_shape).edges
+    i, j = well_column(column, fine_shape or tuple(int(e[-1]) for e in edges))
+    ci = int(np.searchsorted(edges[0], i, side="right") - 1)
+    cj = int(np.searchsorted(edges[1], j, side="right") - 1)
+    drain_t = np.zeros(cells.shape)
+    drain_t[ci, cj, :] = well_factors(k[0][ci, cj], k[1][ci, cj], cells.dx[ci], cells.dy[cj],
+                                      cells.dz[ci, cj], well_radius)
+    description.update(column=[i, j], coarse_column=[ci, cj], well_radius=float(well_radius))
+    return drain_t
+
+
 def _number(value) -> float | None:
+    """``value`` as a float, None when it is not finite (JSON has no NaN)."""
     value = float(value)
     return value if math.isfinite(value) else None
 
@@ -107,8 +142,28 @@ def _relative(a, b):
 def check_options(coarse: xr.Dataset, fine_shape, drainage: str = "face", face: str = "x-", column=None,
                   compressibility: float = DEFAULT_COMPRESSIBILITY, viscosity: float = DEFAULT_VISCOSITY,
                   steps_per_doubling: int = 8, span=DEFAULT_SPAN, **_ignored):
-    """Check the set-up of :func:`transient_check` before any work; InputError if wrong.
-    Returns the well column (i, j) for 'well', else ``column`` unchanged."""
+    """Check the set-up of :func:`transient_check` before any work.
+
+    Parameters
+    ----------
+    coarse : xarray.Dataset
+        The coarse grid: its fine-index ranges must tile ``fine_shape`` (required for
+        "well").
+    fine_shape : tuple of int
+        (nx, ny, nz) of the fine field.
+    drainage, face, column, compressibility, viscosity, steps_per_doubling, span
+        As for :func:`transient_check`; other keywords are ignored.
+
+    Returns
+    -------
+    tuple of int or None
+        The well column (i, j) for "well", else ``column`` unchanged.
+
+    Raises
+    ------
+    InputError
+        If any option is wrong.
+    """
     drainage = check_drainage(drainage)
     if drainage == "well":
         column = well_column(column, fine_shape)
@@ -131,76 +186,111 @@ def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face"
                     viscosity: float = DEFAULT_VISCOSITY, well_radius: float = DEFAULT_WELL_RADIUS,
                     span=DEFAULT_SPAN, steps_per_doubling: int = 8, direct_limit: int = DIRECT_LIMIT,
                     solve_tolerance: float = CHECK_SOLVE_TOLERANCE) -> dict:
-    """Drain a fine field and its coarse grid the same way and compare; JSON-ready dict.
+    """Drain a fine field and its coarse grid the same way and compare.
 
-    drainage 'face' (``face`` 'x-' ... 'z+') or 'well' (fine ``column`` (i, j), the grid
-    centre if None). times: step end times in days; by default :func:`time_grid` from
-    span[0] to span[1] times the fine field's time scale (:func:`time_scale`). Both models
-    use the same time grid (implicit Euler), so the comparison isolates the upscaling error
-    from the time-stepping error. solve_tolerance: relative residual of each step's solve.
+    Both models use the same time grid (implicit Euler), so the comparison isolates the
+    upscaling error from the time-stepping error.
 
-    Returns: 'drainage' (set-up, both models' connection factors), 'time_scale' (see
-    :func:`time_scale`), 'times' (days), 'fine' and 'coarse' each with 'rate' (m3/day),
-    'cumulative' (m3), 'drained_fraction_end' (cumulative / drainable at the last time),
-    'pore_volume' (m3), 'balance_error', 'cells', 'solver'; 'cumulative_relative_error' and
-    'rate_relative_error' ((coarse - fine) / fine at each time, None where fine is 0),
-    'final_cumulative_relative_error', 'pore_volume_relative_difference' ((coarse - fine) /
-    fine), and the pressures, compressibility and viscosity used.
+    Parameters
+    ----------
+    fine, coarse : xarray.Dataset
+        The fine field and its coarse grid.
+    drainage, face, column, well_radius
+        "face" (``face`` "x-" ... "z+") or "well" (fine ``column`` (i, j), the grid
+        centre if None; ``well_radius`` in m).
+    times : array_like, optional
+        Step end times, days; by default :func:`time_grid` from span[0] to span[1] times
+        the fine field's time scale (:func:`time_scale`), ``steps_per_doubling`` per doubling.
+    p_initial, p_drain, compressibility, viscosity : float
+        Initial and drainage pressure (bar), total compressibility (1/bar), viscosity (cP).
+    direct_limit : int
+        Largest model solved directly (more unknowns: AMG-preconditioned CG).
+    solve_tolerance : float
+        Relative residual of each step's solve.
+
+    Returns
+    -------
+    dict
+        JSON-ready: 'drainage' (set-up, both models' connection factors), 'time_scale' (see
+        :func:`time_scale`), 'times' (days), 'fine' and 'coarse' each with 'rate' (m3/day),
+        'cumulative' (m3), 'drained_fraction_end' (cumulative / drainable at the last
+        time), 'pore_volume' (m3), 'balance_error', 'cells', 'solver';
+        'cumulative_relative_error' and 'rate_relative_error' ((coarse - fine) / fine at
+        each time, None where fine is 0), 'final_cumulative_relative_error',
+        'pore_volume_relative_difference' ((coarse - fine) / fine), and the pressures,
+        compressibility and viscosity used.
     """
-    fine = validate(fine, where="fine field")
-    coarse = validate(coarse, where="coarse grid")
-    cells = arrays(fine)
-    column = check_options(coarse, cells.shape, drainage, face, column, compressibility, viscosity,
-                           steps_per_doubling)
-    fine_model = TransientSystem.from_fine(cells, drainage, face, column, well_radius)
-    coarse_model = coarse_system(coarse, drainage, face, column, cells.shape, well_radius)
-    scale = time_scale(cells, drainage, face, column, compressibility, viscosity,
-                       fine_model.drainage_factor)
+    cells, column, models = _models(fine, coarse, drainage, face, column, compressibility, viscosity,
+                                    steps_per_doubling, well_radius, span)
+    scale = time_scale(cells, drainage, face, column, compressibility, viscosity, models["fine"].drainage_factor)
     if times is None:
         times = time_grid(span[0] * scale["time_scale_days"], span[1] * scale["time_scale_days"],
                           steps_per_doubling)
-    runs = {}
-    for name, system in (("fine", fine_model), ("coarse", coarse_model)):
-        result = simulate(system, times, p_initial, p_drain, compressibility, viscosity,
-                          direct_limit=direct_limit, tolerance=solve_tolerance)
-        runs[name] = result
-    f, c = runs["fine"], runs["coarse"]
-
-    def summary(result, system):
-        drainable = result["drainable"]
-        return {
-            "rate": [_number(v) for v in result["rate"]],
-            "cumulative": [_number(v) for v in result["cumulative"]],
-            "drained_fraction_end": _number(result["cumulative"][-1] / drainable) if drainable else None,
-            "pore_volume": _number(result["pore_volume"]),
-            "drainable": _number(drainable),
-            "balance_error": _number(result["balance_error"]),
-            "cells": int(system.size),
-            "solver": {k: (_number(v) if isinstance(v, float) else v) for k, v in result["solver"].items()},
-        }
-
-    pv_f, pv_c = f["pore_volume"], c["pore_volume"]
-    error = _relative(c["cumulative"], f["cumulative"])
-    setup = {"type": drainage}
-    if drainage == "face":
-        setup["face"] = face
-    else:
-        setup.update(column=list(fine_model.description["column"]),
-                     coarse_column=list(coarse_model.description["coarse_column"]),
-                     well_radius=float(well_radius))
-    setup["connection_factor"] = {"fine": _number(fine_model.drainage_factor),
-                                  "coarse": _number(coarse_model.drainage_factor),
-                                  "units": "m3*cP/(day*bar)"}
+    runs = {name: simulate(system, times, p_initial, p_drain, compressibility, viscosity,
+                           direct_limit=direct_limit, tolerance=solve_tolerance) for name, system in models.items()}
     return {
-        "drainage": setup,
+        "drainage": _drainage_setup(drainage, face, well_radius, models),
         "p_initial_bar": float(p_initial),
         "p_drain_bar": float(p_drain),
         "compressibility_per_bar": float(compressibility),
         "viscosity_cP": float(viscosity),
         "time_scale": {k: _number(v) for k, v in scale.items()},
         "times": [_number(t) for t in np.asarray(times, dtype=float)],
-        "fine": summary(f, fine_model),
-        "coarse": summary(c, coarse_model),
+        **_comparison(runs, models),
+    }
+
+
+def _models(fine: xr.Dataset, coarse: xr.Dataset, drainage: str, face: str, column, compressibility: float,
+            viscosity: float, steps_per_doubling: int, well_radius: float, span):
+    """The fine field's arrays, the well column (:func:`check_options`) and both models."""
+    fine = validate(fine, where="fine field")
+    coarse = validate(coarse, where="coarse grid")
+    cells = arrays(fine)
+    column = check_options(coarse, cells.shape, drainage, face, column, compressibility, viscosity,
+                           steps_per_doubling, span)
+    models = {"fine": TransientSystem.from_fine(cells, drainage, face, column, well_radius),
+              "coarse": coarse_system(coarse, drainage, face, column, cells.shape, well_radius)}
+    return cells, column, models
+
+
+def _drainage_setup(drainage: str, face: str, well_radius: float, models: dict) -> dict:
+    """The 'drainage' entry: the set-up and both models' connection factors."""
+    setup = {"type": drainage}
+    if drainage == "face":
+        setup["face"] = face
+    else:
+        setup.update(column=list(models["fine"].description["column"]),
+                     coarse_column=list(models["coarse"].description["coarse_column"]),
+                     well_radius=float(well_radius))
+    setup["connection_factor"] = {"fine": _number(models["fine"].drainage_factor),
+                                  "coarse": _number(models["coarse"].drainage_factor),
+                                  "units": "m3*cP/(day*bar)"}
+    return setup
+
+
+def _run_summary(result: dict, system: TransientSystem) -> dict:
+    """One model's run for the metrics: rates, cumulatives, volumes, balance, solver."""
+    drainable = result["drainable"]
+    return {
+        "rate": [_number(v) for v in result["rate"]],
+        "cumulative": [_number(v) for v in result["cumulative"]],
+        "drained_fraction_end": _number(result["cumulative"][-1] / drainable) if drainable else None,
+        "pore_volume": _number(result["pore_volume"]),
+        "drainable": _number(drainable),
+        "balance_error": _number(result["balance_error"]),
+        "cells": int(system.size),
+        "solver": {k: (_number(v) if isinstance(v, float) else v) for k, v in result["solver"].items()},
+    }
+
+
+def _comparison(runs: dict, models: dict) -> dict:
+    """Both runs and the coarse run's relative errors against the fine one."""
+    f, c = runs["fine"], runs["coarse"]
+    pv_f, pv_c = f["pore_volume"], c["pore_volume"]
+    error = _relative(c["cumulative"], f["cumulative"])
+    return {
+        "fine": _run_summary(f, models["fine"]),
+        "coarse": _run_summary(c, models["coarse"]),
         "cumulative_relative_error": error,
         "rate_relative_error": _relative(c["rate"], f["rate"]),
         "final_cumulative_relative_error": error[-1],

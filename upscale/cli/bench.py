@@ -6,7 +6,7 @@ default) with 5 x 5 x 5 blocks. The plain approach assembles and solves one scip
 system per block and direction (periodic: one factorisation, three right-hand sides); it
 is timed on a random sample of blocks and scaled to the whole field, and its numbers are
 compared with the batched ones on that sample. The sealed solves, the face problems
-(multipliers) and both in one pass (:func:`upscale.transmissibility.sealed_and_face_flow`)
+(multipliers) and both in one pass (:func:`upscale.core.face_problems.sealed_and_face_flow`)
 are timed REPEATS times each, interleaved, and the least time of each is reported.
 """
 
@@ -41,17 +41,26 @@ def _end(shape, axis: int, index: int) -> tuple[slice, ...]:
 
 
 def _plain_block(k, lengths, bc: str) -> np.ndarray:
-    """One block the plain way: scipy sparse assembly and direct solves; diagonal (3,) in mD.
-
-    ``k``, ``lengths``: three arrays (sx, sy, sz). Sealed: one system per direction;
-    periodic: one system (a cell grounded), three right-hand sides. Meant for fields
-    without zero permeability (the benchmark's lognormal field).
-    """
+    """One block the plain way, scipy sparse assembly and direct solves: its diagonal
+    (3,), mD. Meant for fields without zero permeability (the benchmark's lognormal field)."""
     shape = k[0].shape
-    n = k[0].size
-    index = np.arange(n).reshape(shape)
     volume = lengths[0] * lengths[1] * lengths[2]
     half = [2 * k[a] * volume / lengths[a] ** 2 for a in range(3)]
+    coupling = _plain_coupling(half, bc)
+    block_volume = volume.sum()
+    lx, ly = lengths[0][:, 0, 0].sum(), lengths[1][0, :, 0].sum()
+    length = (lx, ly, block_volume / (lx * ly))
+    if bc == "sealed":
+        return _plain_sealed(coupling, half, shape, length, block_volume)
+    return _plain_periodic(coupling, half, shape, length, block_volume)
+
+
+def _plain_coupling(half, bc: str) -> sp.csr_matrix:
+    """The block's cell-to-cell matrix from the half-cell transmissibilities ``half``
+    (three arrays (sx, sy, sz)); periodic: with the faces that wrap around."""
+    shape = half[0].shape
+    n = half[0].size
+    index = np.arange(n).reshape(shape)
     rows, cols, vals = [], [], []
     for a in range(3):
         pairs = [(np.take(index, np.arange(shape[a] - 1), a), np.take(index, np.arange(1, shape[a]), a),
@@ -65,27 +74,32 @@ def _plain_block(k, lengths, bc: str) -> np.ndarray:
             rows += [p, q, p, q]
             cols += [p, q, q, p]
             vals += [t, t, -t, -t]
-    coupling = sp.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n, n))
-    block_volume = volume.sum()
-    lx, ly = lengths[0][:, 0, 0].sum(), lengths[1][0, :, 0].sum()
-    length = (lx, ly, block_volume / (lx * ly))
+    return sp.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(n, n))
+
+
+def _plain_sealed(coupling, half, shape, length, block_volume: float) -> np.ndarray:
+    """Sealed sides: one system per direction, unit pressure drop across the block."""
     out = np.zeros(3)
-    if bc == "sealed":
-        for d in range(3):
-            diag = np.zeros(shape)
-            rhs = np.zeros(shape)
-            sl_in, sl_out = _end(shape, d, 0), _end(shape, d, shape[d] - 1)
-            inflow = half[d][sl_in]
-            diag[sl_in] += inflow
-            diag[sl_out] += half[d][sl_out]
-            rhs[sl_in] += inflow
-            p = spla.spsolve((coupling + sp.diags(diag.ravel())).tocsc(), rhs.ravel()).reshape(shape)
-            q = (inflow * (1 - p[sl_in])).sum()
-            out[d] = q * length[d] ** 2 / block_volume
-        return out
-    ground = np.zeros(n)
+    for d in range(3):
+        diag = np.zeros(shape)
+        rhs = np.zeros(shape)
+        sl_in, sl_out = _end(shape, d, 0), _end(shape, d, shape[d] - 1)
+        inflow = half[d][sl_in]
+        diag[sl_in] += inflow
+        diag[sl_out] += half[d][sl_out]
+        rhs[sl_in] += inflow
+        p = spla.spsolve((coupling + sp.diags(diag.ravel())).tocsc(), rhs.ravel()).reshape(shape)
+        q = (inflow * (1 - p[sl_in])).sum()
+        out[d] = q * length[d] ** 2 / block_volume
+    return out
+
+
+def _plain_periodic(coupling, half, shape, length, block_volume: float) -> np.ndarray:
+    """Periodic sides: one factorisation (a cell grounded), one right-hand side per direction."""
+    ground = np.zeros(coupling.shape[0])
     ground[0] = coupling[0, 0]
     factor = spla.splu((coupling + sp.diags(ground)).tocsc())
+    out = np.zeros(3)
     for d in range(3):
         rhs = np.zeros(shape)
         last, first = _end(shape, d, shape[d] - 1), _end(shape, d, 0)
@@ -108,9 +122,20 @@ def _factor_work(shape) -> int:
 
 
 def face_to_sealed_work(partition) -> float:
-    """Factorisation work of every face problem (two blocks) over that of the sealed
-    solves (one per block and direction): the least time ratio any schedule of these
-    banded factorisations can reach."""
+    """Factorisation work of every face problem over that of the sealed solves.
+
+    Parameters
+    ----------
+    partition : Partition
+        The coarse blocks.
+
+    Returns
+    -------
+    float
+        Work of the face problems (two blocks each) over that of the sealed solves (one
+        per block and direction): the least time ratio any schedule of these banded
+        factorisations can reach.
+    """
     sealed = sum(3 * g.count * _factor_work(g.shape) for g in block_groups(partition))
     faces = sum(g.count * _factor_work(g.shape) for axis in range(3)
                 for g in block_groups(partition, extend=tuple(int(a == axis) for a in range(3))))
@@ -118,47 +143,112 @@ def face_to_sealed_work(partition) -> float:
 
 
 def _timed(function, *args, **kwargs):
+    """``function(*args, **kwargs)`` and the seconds it took."""
     start = time.perf_counter()
     value = function(*args, **kwargs)
     return value, time.perf_counter() - start
 
 
 def _peak_memory_mb() -> float:
+    """Peak resident memory of this process so far, MB."""
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
 
 def run_bench(shape=(60, 220, 85), sample: int = 300, quiet: bool = False, seed: int = 0,
               whole_model: bool = False) -> dict:
-    """Run the benchmark, print a table, and return the figures as a dict. With
-    ``whole_model``, also time the fine whole-model steady check in three directions."""
-    fine = validate(lognormal_field(shape=tuple(shape), seed=seed))
-    cells = arrays(fine)
+    """Run the benchmark, print a table (:func:`format_bench`), and return the figures.
+
+    Parameters
+    ----------
+    shape : tuple of int
+        (nx, ny, nz) of the lognormal field.
+    sample : int
+        Blocks drawn at random for the plain per-block loop (whole blocks only are timed).
+    quiet : bool
+        Unused: the benchmark shows no progress bars.
+    seed : int
+        Seed of the field and of the sample.
+    whole_model : bool
+        Also time the fine whole-model steady check in three directions.
+
+    Returns
+    -------
+    dict
+        Times (s), their ratios, the work ratio of the face problems, the largest
+        relative differences batched vs plain on the sample, peak memory (MB).
+    """
+    cells = arrays(validate(lognormal_field(shape=tuple(shape), seed=seed)))
     partition = make_partition(cells.shape, ratio=BLOCK)
     k = cells.flow_permeability()
-    weight = cells.bulk_volume * cells.active
+    _warm_up()
+    static_time = _time_static(cells, partition, k)
+    results, times = _time_flow(cells, partition)
+    plain_time, difference, sampled = _time_plain(cells, partition, k, results, sample, seed)
+    figures = {
+        "field": f"{shape[0]} x {shape[1]} x {shape[2]} = {int(np.prod(shape)):,} cells, blocks {BLOCK}",
+        "blocks": int(np.prod(partition.shape)),
+        "static_seconds": static_time,
+        "sealed_seconds": times["sealed"], "periodic_seconds": times["periodic"],
+        "multiplier_seconds": times["multipliers"], "multiplier_to_sealed": times["multipliers"] / times["sealed"],
+        "together_seconds": times["together"],
+        "added_multiplier_to_sealed": (times["together"] - times["sealed"]) / times["sealed"],
+        "multiplier_work_to_sealed": face_to_sealed_work(partition),
+        "plain_sealed_seconds": plain_time["sealed"], "plain_periodic_seconds": plain_time["periodic"],
+        "sealed_speedup": plain_time["sealed"] / times["sealed"],
+        "periodic_speedup": plain_time["periodic"] / times["periodic"],
+        "sample_blocks": sampled,
+        "max_relative_difference_sealed": difference["sealed"],
+        "max_relative_difference_periodic": difference["periodic"],
+        "peak_memory_mb": _peak_memory_mb(),
+    }
+    if whole_model:
+        figures.update(_time_whole_model(cells))
+    print(format_bench(figures))
+    return figures
+
+
+def _warm_up() -> None:
+    """Compile the kernels on a small field before anything is timed."""
     warm = make_partition((10, 10, 10), ratio=BLOCK)
     small = arrays(validate(lognormal_field(shape=(10, 10, 10), seed=1)))
     for bc in ("sealed", "periodic"):
-        flow_tensors(small, warm, bc)  # compile the kernels before timing
+        flow_tensors(small, warm, bc)
+
+
+def _time_static(cells, partition, k) -> float:
+    """Seconds of every static average and the Cardwell-Parsons bounds of the flow
+    permeability ``k``, three directions."""
+    weight = cells.bulk_volume * cells.active
 
     def static_all():
+        """Every static average and the bounds along x, y, z."""
         for axis in range(3):
             for method in STATIC_METHODS:
                 static_average(k[axis], weight, partition, method, omega=0.5)
             cardwell_parsons(k[axis], cells.dx, cells.dy, cells.dz, partition, axis)
 
-    _, static_time = _timed(static_all)
+    return _timed(static_all)[1]
+
+
+def _time_flow(cells, partition) -> tuple[dict, dict]:
+    """The sealed and periodic flow tensors and the seconds of each batched run: sealed
+    and periodic once, then the least of REPEATS interleaved runs of the sealed solves,
+    the face problems, and both in one pass (these timings are noisy)."""
     results, times = {}, {}
     for bc in ("sealed", "periodic"):
         results[bc], times[bc] = _timed(flow_tensors, cells, partition, bc)
-    # The sealed solves and the face problems, separately and in one pass, side by side;
-    # the least of REPEATS interleaved runs of each (these boxes are noisy).
     for _ in range(REPEATS):
         for name, function in (("sealed", lambda: flow_tensors(cells, partition, "sealed")),
                                ("multipliers", lambda: flow_transmissibility(cells, partition)),
                                ("together", lambda: sealed_and_face_flow(cells, partition))):
             times[name] = min(times.get(name, np.inf), _timed(function)[1])
+    return results, times
 
+
+def _time_plain(cells, partition, k, results: dict, sample: int, seed: int) -> tuple[dict, dict, int]:
+    """The plain loop on the whole blocks of a random sample: its time scaled to every
+    block and its largest relative difference from the batched diagonal, per boundary
+    condition, and the number of blocks timed."""
     rng = np.random.default_rng(seed)
     blocks = [tuple(int(rng.integers(0, n)) for n in partition.shape) for _ in range(sample)]
     lengths = (np.broadcast_to(cells.dx[:, None, None], cells.shape),
@@ -176,38 +266,37 @@ def run_bench(shape=(60, 220, 85), sample: int = 300, quiet: bool = False, seed:
         elapsed = time.perf_counter() - start
         plain_time[bc] = elapsed / max(len(full), 1) * int(np.prod(partition.shape))
         difference[bc] = worst
-    figures = {
-        "field": f"{shape[0]} x {shape[1]} x {shape[2]} = {int(np.prod(shape)):,} cells, blocks {BLOCK}",
-        "blocks": int(np.prod(partition.shape)),
-        "static_seconds": static_time,
-        "sealed_seconds": times["sealed"], "periodic_seconds": times["periodic"],
-        "multiplier_seconds": times["multipliers"], "multiplier_to_sealed": times["multipliers"] / times["sealed"],
-        "together_seconds": times["together"],
-        "added_multiplier_to_sealed": (times["together"] - times["sealed"]) / times["sealed"],
-        "multiplier_work_to_sealed": face_to_sealed_work(partition),
-        "plain_sealed_seconds": plain_time["sealed"], "plain_periodic_seconds": plain_time["periodic"],
-        "sealed_speedup": plain_time["sealed"] / times["sealed"],
-        "periodic_speedup": plain_time["periodic"] / times["periodic"],
-        "sample_blocks": len(full),
-        "max_relative_difference_sealed": difference["sealed"],
-        "max_relative_difference_periodic": difference["periodic"],
-        "peak_memory_mb": _peak_memory_mb(),
-    }
-    if whole_model:
-        from ..checks.steady import axis_processes, fine_model_checks
+    return plain_time, difference, len(full)
 
-        start = time.perf_counter()
-        figures["whole_model_workers"] = axis_processes(cells.kx.size)
-        solves = [r["solver"] for r in fine_model_checks(cells, workers=figures["whole_model_workers"])]
-        figures["whole_model_seconds"] = time.perf_counter() - start
-        figures["whole_model_residual"] = max(s["relative_residual"] for s in solves)
-        figures["peak_memory_mb"] = _peak_memory_mb()
-        figures["worker_peak_memory_mb"] = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0
-    print(format_bench(figures))
+
+def _time_whole_model(cells) -> dict:
+    """Seconds, workers, largest residual and peak memory of the fine whole-model check."""
+    from ..checks.steady import axis_processes, fine_model_checks
+
+    figures = {}
+    start = time.perf_counter()
+    figures["whole_model_workers"] = axis_processes(cells.kx.size)
+    solves = [r["solver"] for r in fine_model_checks(cells, workers=figures["whole_model_workers"])]
+    figures["whole_model_seconds"] = time.perf_counter() - start
+    figures["whole_model_residual"] = max(s["relative_residual"] for s in solves)
+    figures["peak_memory_mb"] = _peak_memory_mb()
+    figures["worker_peak_memory_mb"] = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0
     return figures
 
 
 def format_bench(f: dict) -> str:
+    """The benchmark table.
+
+    Parameters
+    ----------
+    f : dict
+        The figures of :func:`run_bench`.
+
+    Returns
+    -------
+    str
+        One line per timing, with ratios and speed-ups, then the peak memory.
+    """
     return "\n".join([
         f"upscale bench: {f['field']} ({f['blocks']:,} blocks)",
         f"  static: 4 averages + Cardwell-Parsons bounds, 3 directions   {f['static_seconds']:8.2f} s",

@@ -39,11 +39,15 @@ EXAMPLES = {
 
 
 class _Parser(argparse.ArgumentParser):
-    def error(self, message):  # one line, exit 2
+    """An argument parser whose usage errors are one line and exit 2."""
+
+    def error(self, message):
+        """Print the usage error as one line and exit 2."""
         self.exit(2, f"upscale: error: {message} (see: {self.prog} --help)\n")
 
 
 def _common() -> argparse.ArgumentParser:
+    """The options every verb takes: --quiet, --verbose, --debug."""
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("--quiet", action="store_true", help="no progress bars")
     common.add_argument("--verbose", action="store_true", help="detailed log messages")
@@ -52,12 +56,14 @@ def _common() -> argparse.ArgumentParser:
 
 
 def _add(sub, name: str, help_text: str) -> argparse.ArgumentParser:
+    """The subparser of verb ``name``, its examples (:data:`EXAMPLES`) as the epilog."""
     epilog = "example:\n" + textwrap.indent(textwrap.dedent(EXAMPLES[name]), "  ")
     return sub.add_parser(name, help=help_text, description=help_text, epilog=epilog, parents=[_common()],
                           formatter_class=argparse.RawDescriptionHelpFormatter)
 
 
 def _edges_argument(text: str) -> tuple[str, list[int]]:
+    """``--edges AXIS=E0,E1,...`` as (axis, [edges])."""
     try:
         axis, values = text.split("=", 1)
         return axis.strip(), [int(v) for v in values.replace(",", " ").split()]
@@ -66,6 +72,7 @@ def _edges_argument(text: str) -> tuple[str, list[int]]:
 
 
 def _add_parallel(p: argparse.ArgumentParser) -> None:
+    """The options of work in boxes: --memory, --workers, --box, --scheduler."""
     p.add_argument("--memory", metavar="SIZE", help="memory budget of the whole run, e.g. 2GB or 800MB "
                    "(default: half the memory available); a field that does not fit is processed in "
                    "boxes of whole coarse blocks")
@@ -77,13 +84,8 @@ def _add_parallel(p: argparse.ArgumentParser) -> None:
                    "--memory is then the budget of each worker)")
 
 
-def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(prog="upscale", description="Coarsen fine geomodels for flow simulation and "
-                     "check that the coarse grid still flows like the fine one.")
-    parser.add_argument("--version", action="version", version=f"upscale {tool_version()}")
-    sub = parser.add_subparsers(dest="verb", required=True, parser_class=_Parser)
-
-    p = _add(sub, "coarsen", "coarsen a fine field into a coarse grid file")
+def _coarsen_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale coarsen``."""
     p.add_argument("fine", help="fine field (NetCDF)")
     p.add_argument("-o", "--output", required=True, help="coarse grid file to write (NetCDF)")
     p.add_argument("--ratio", nargs=3, type=int, metavar=("RX", "RY", "RZ"),
@@ -100,11 +102,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--units", default="metric", help="transmissibility units: metric or field")
     _add_parallel(p)
 
-    p = _add(sub, "inspect", "summarise a field file: sizes, value ranges, heterogeneity")
+
+def _inspect_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale inspect``."""
     p.add_argument("file", help="field or coarse grid (NetCDF)")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
 
-    p = _add(sub, "make-field", "write a seeded synthetic field")
+
+def _make_field_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale make-field``."""
     p.add_argument("kind", choices=("lognormal", "layered", "channels", "demo"))
     p.add_argument("-o", "--output", required=True, help="file to write (NetCDF)")
     p.add_argument("--shape", nargs=3, type=int, metavar=("NX", "NY", "NZ"))
@@ -122,10 +128,14 @@ def build_parser() -> argparse.ArgumentParser:
                    "chunk within --memory (another generator: the same seed gives another field)")
     p.add_argument("--memory", metavar="SIZE", help="memory budget, e.g. 2GB (default: half the memory available)")
 
-    p = _add(sub, "demo", "run the whole job on the built-in synthetic sector")
+
+def _demo_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale demo``."""
     p.add_argument("--dir", default=".", help="folder that receives fields/ and reports/ (default: here)")
 
-    p = _add(sub, "check", "compare a coarse grid with its fine field by whole-model flow")
+
+def _check_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale check``."""
     p.add_argument("fine")
     p.add_argument("coarse")
     p.add_argument("--report", help="folder for index.html and metrics.json")
@@ -140,7 +150,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--steps-per-doubling", type=int, default=8,
                    help="implicit Euler steps per doubling of time (even, default 8)")
 
-    p = _add(sub, "layers", "judge a grouping of fine layers and propose the best one")
+
+def _layers_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale layers``."""
     p.add_argument("fine")
     p.add_argument("--target", type=int, required=True, help="number of coarse layers")
     p.add_argument("--edges", type=lambda t: [int(v) for v in t.replace(",", " ").split()],
@@ -149,16 +161,64 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--memory", metavar="SIZE", help="memory budget, e.g. 2GB (default: half the memory "
                    "available); the field is read in slabs along x that fit it")
 
-    p = _add(sub, "bench", "time the upscaling against the plain per-block approach")
+
+def _bench_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale bench``."""
     p.add_argument("--shape", nargs=3, type=int, default=(60, 220, 85), metavar=("NX", "NY", "NZ"))
     p.add_argument("--sample", type=int, default=300, help="blocks timed with the plain loop")
     p.add_argument("--whole-model", action="store_true", help="also time the fine whole-model steady check")
+
+
+#: the verbs in the order of ``upscale --help``: name, one-line help, its options
+_VERB_PARSERS = (
+    ("coarsen", "coarsen a fine field into a coarse grid file", _coarsen_options),
+    ("inspect", "summarise a field file: sizes, value ranges, heterogeneity", _inspect_options),
+    ("make-field", "write a seeded synthetic field", _make_field_options),
+    ("demo", "run the whole job on the built-in synthetic sector", _demo_options),
+    ("check", "compare a coarse grid with its fine field by whole-model flow", _check_options),
+    ("layers", "judge a grouping of fine layers and propose the best one", _layers_options),
+    ("bench", "time the upscaling against the plain per-block approach", _bench_options),
+)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The parser of the command line.
+
+    Returns
+    -------
+    argparse.ArgumentParser
+        ``upscale`` with ``--version`` and one subparser per verb (:data:`_VERB_PARSERS`),
+        the chosen verb in ``verb``; usage errors print one line and exit 2.
+    """
+    parser = _Parser(prog="upscale", description="Coarsen fine geomodels for flow simulation and "
+                     "check that the coarse grid still flows like the fine one.")
+    parser.add_argument("--version", action="version", version=f"upscale {tool_version()}")
+    sub = parser.add_subparsers(dest="verb", required=True, parser_class=_Parser)
+    for name, help_text, add_options in _VERB_PARSERS:
+        add_options(_add(sub, name, help_text))
     return parser
 
 
 @contextmanager
 def progress_bar(total: int, label: str, quiet: bool, unit: str = "block"):
-    """A tqdm bar on stderr (off when quiet or not a terminal); yields an update callable."""
+    """A tqdm progress bar on stderr, for the duration of a ``with`` block.
+
+    Parameters
+    ----------
+    total : int
+        Units of work.
+    label : str
+        Shown before the bar.
+    quiet : bool
+        No bar; neither is there one when stderr is not a terminal.
+    unit : str
+        Name of one unit of work.
+
+    Yields
+    ------
+    callable
+        ``update(n)``: n more units done.
+    """
     from tqdm import tqdm
 
     bar = tqdm(total=total, desc=label, unit=unit, disable=quiet or not sys.stderr.isatty(),
@@ -170,11 +230,10 @@ def progress_bar(total: int, label: str, quiet: bool, unit: str = "block"):
 
 
 def _coarsen(args) -> int:
-    from ..io.coarse_grid import warn_flagged
+    """``upscale coarsen``: in memory, or in boxes when the field does not fit the budget."""
     from ..io.reading import open_field
     from ..io.writing import check_output_path
     from ..scale.cluster import cluster
-    from ..scale.coarsen import coarsen
     from ..scale.stream import write
 
     out = check_output_path(args.output, inputs=(args.fine,))
@@ -192,30 +251,44 @@ def _coarsen(args) -> int:
 
         keep_heap_small()
     with cluster(workers=args.workers, scheduler=args.scheduler):  # none unless asked for
-        fine = plan.open(args.fine) if chunked else open_field(args.fine)
         if chunked:
-            from ..scale.boxes import box_count
-
-            coarse = coarsen(fine, memory=plan.box_memory, box=args.box, **options)
-            with progress_bar(box_count(coarse), "boxes", args.quiet, unit="box") as update:
-                write(coarse, out, progress=update)
-            import xarray as xr
-
-            with xr.open_dataset(out) as written:
-                coarse = written.load()
-            warn_flagged(coarse)
+            coarse = _coarsen_in_boxes(plan.open(args.fine), plan.box_memory, args.box, options, args.quiet, out)
         else:
-            coarse = _coarsen_in_memory(fine, options, args.quiet)
+            coarse = _coarsen_in_memory(open_field(args.fine), options, args.quiet)
             write(coarse, out)
     if table:
-        from ..io.writing import atomic_write, multiplier_csv
-
-        text = multiplier_csv({n: coarse[f"t{n}_multiplier"].values for n in "xyz"})
-        atomic_write(table, lambda tmp: Path(tmp).write_text(text))
-        print(f"wrote {table}")
+        _write_multiplier_csv(coarse, table)
     print(f"wrote {out} ({' x '.join(str(coarse.sizes[d]) for d in ('x', 'y', 'z'))} cells, "
           f"method {coarse.attrs['method']}{', in boxes' if chunked else ''})")
     return 0
+
+
+def _coarsen_in_boxes(fine, box_memory: int, box, options: dict, quiet: bool, out):
+    """``coarsen`` box by box, streamed to ``out`` with a progress bar over the boxes;
+    returns the file written, read back (and its flagged blocks warned about)."""
+    import xarray as xr
+
+    from ..io.coarse_grid import warn_flagged
+    from ..scale.boxes import box_count
+    from ..scale.coarsen import coarsen
+    from ..scale.stream import write
+
+    coarse = coarsen(fine, memory=box_memory, box=box, **options)
+    with progress_bar(box_count(coarse), "boxes", quiet, unit="box") as update:
+        write(coarse, out, progress=update)
+    with xr.open_dataset(out) as written:
+        coarse = written.load()
+    warn_flagged(coarse)
+    return coarse
+
+
+def _write_multiplier_csv(coarse, table) -> None:
+    """Write the coarse grid's multipliers as CSV (:func:`multiplier_csv`), atomically."""
+    from ..io.writing import atomic_write, multiplier_csv
+
+    text = multiplier_csv({n: coarse[f"t{n}_multiplier"].values for n in "xyz"})
+    atomic_write(table, lambda tmp: Path(tmp).write_text(text))
+    print(f"wrote {table}")
 
 
 def _coarsen_in_memory(fine, options: dict, quiet: bool):
@@ -235,6 +308,7 @@ def _coarsen_in_memory(fine, options: dict, quiet: bool):
 
 
 def _memory_plan(args):
+    """The MemoryPlan of the command's --memory, --workers and --scheduler."""
     from ..scale.memory import MemoryPlan, parse_memory
 
     return MemoryPlan(parse_memory(args.memory) if args.memory else None, getattr(args, "workers", None),
@@ -242,6 +316,7 @@ def _memory_plan(args):
 
 
 def _inspect(args) -> int:
+    """``upscale inspect``: the field summary as text or JSON."""
     from ..checks.summary import field_summary
     from ..io.reading import open_field
     from ..report.text import format_summary
@@ -252,6 +327,7 @@ def _inspect(args) -> int:
 
 
 def _make_field(args) -> int:
+    """``upscale make-field``: write one of the synthetic fields."""
     from ..gallery import synthetic
     from ..io.writing import check_output_path
     from ..scale.stream import write
@@ -295,6 +371,7 @@ def _make_field(args) -> int:
 
 
 def _demo(args) -> int:
+    """``upscale demo``."""
     from .demo import run_demo
 
     run_demo(args.dir, quiet=args.quiet)
@@ -302,6 +379,7 @@ def _demo(args) -> int:
 
 
 def _check(args) -> int:
+    """``upscale check``: the steady and transient checks and their report."""
     from .check import run_check
 
     transient = {"drainage": args.drainage, "face": args.face, "column": args.well_column,
@@ -312,6 +390,7 @@ def _check(args) -> int:
 
 
 def _layers(args) -> int:
+    """``upscale layers``: judge groupings of the fine layers, optionally with a figure."""
     from ..checks.layering import field_layer_statistics
     from ..core.layering import compare_groupings
     from ..io.writing import check_output_path
@@ -331,6 +410,7 @@ def _layers(args) -> int:
 
 
 def _bench(args) -> int:
+    """``upscale bench``."""
     from .bench import run_bench
 
     run_bench(shape=tuple(args.shape), sample=args.sample, quiet=args.quiet, whole_model=args.whole_model)
@@ -342,6 +422,20 @@ VERBS = {"coarsen": _coarsen, "inspect": _inspect, "make-field": _make_field, "d
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Run one command line.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        The arguments after ``upscale``; None: ``sys.argv[1:]``.
+
+    Returns
+    -------
+    int
+        Exit code: 0 success, 2 bad usage or input, 1 internal failure, 130 interrupted.
+        Errors are printed as one line on stderr (internal ones with a traceback under
+        --debug).
+    """
     parser = build_parser()
     args = parser.parse_args(argv)
     logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
@@ -363,9 +457,12 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def run() -> None:
-    """Console entry point. After an interrupt (exit code 130) the process ends at once,
-    streams flushed and temporary files already removed, so that a second Ctrl-C landing
-    in the interpreter's shutdown cannot turn the exit into a traceback or a signal death."""
+    """Console entry point: :func:`main` on the process's arguments, exiting with its code.
+
+    After an interrupt (exit code 130) the process ends at once, streams flushed and
+    temporary files already removed, so that a second Ctrl-C landing in the interpreter's
+    shutdown cannot turn the exit into a traceback or a signal death.
+    """
     code = main()
     if code == 130:
         sys.stdout.flush()

@@ -52,13 +52,35 @@ def coarse_partition(coarse: xr.Dataset, fine_shape=None, required: bool = True)
 
 
 def coarse_effective(coarse: xr.Dataset) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Effective (flow) permeability of a coarse file along x, y, z, mD."""
+    """Effective (flow) permeability of a coarse file along x, y, z.
+
+    Parameters
+    ----------
+    coarse : xarray.Dataset
+        A normalised coarse grid.
+
+    Returns
+    -------
+    tuple of numpy.ndarray
+        kx*ntg, ky*ntg, kz, each (NX, NY, NZ), mD.
+    """
     ntg = coarse["ntg"].values
     return coarse["kx"].values * ntg, coarse["ky"].values * ntg, coarse["kz"].values
 
 
 def coarse_units(coarse: xr.Dataset) -> str:
-    """The transmissibility unit system (metric or field) of a coarse file."""
+    """The transmissibility unit system of a coarse file.
+
+    Parameters
+    ----------
+    coarse : xarray.Dataset
+        A coarse grid: its ``transmissibility_units`` attribute, else the units of ``tx``.
+
+    Returns
+    -------
+    str
+        "metric" or "field" (a key of :data:`upscale.core.units.TRANSMISSIBILITY_UNITS`).
+    """
     units = coarse.attrs.get("transmissibility_units")
     if units is None and "tx" in coarse:
         written = str(coarse["tx"].attrs.get("units", ""))
@@ -70,15 +92,40 @@ def coarse_units(coarse: xr.Dataset) -> str:
 
 
 def transmissibility_constant(coarse: xr.Dataset) -> float:
-    """Factor between the file's transmissibilities and geometric mD*m values: the unit
-    constant times the metres-to-length factor (``upscale.transmissibility`` writes
-    T = constant * to_length * T_geometric)."""
+    """Factor between the file's transmissibilities and geometric mD*m values.
+
+    Parameters
+    ----------
+    coarse : xarray.Dataset
+        A coarse grid (:func:`coarse_units` gives its units).
+
+    Returns
+    -------
+    float
+        The unit constant times the metres-to-length factor (:mod:`upscale.core.upscaling`
+        writes T = constant * to_length * T_geometric).
+    """
     _, constant, to_length = TRANSMISSIBILITY_UNITS[coarse_units(coarse)]
     return constant * to_length
 
 
 def coarse_faces(coarse: xr.Dataset, shape) -> list[np.ndarray]:
-    """The file's tx, ty, tz (dims (x_face, y, z) ...) times their multipliers, in file units."""
+    """The file's face transmissibilities times their multipliers.
+
+    Parameters
+    ----------
+    coarse : xarray.Dataset
+        A coarse grid with tx, ty, tz (dims (x_face, y, z) ...) and optionally
+        tx_multiplier, ty_multiplier, tz_multiplier.
+    shape : tuple of int
+        (NX, NY, NZ), the coarse cells.
+
+    Returns
+    -------
+    list of numpy.ndarray
+        tx (NX - 1, NY, NZ), ty (NX, NY - 1, NZ), tz (NX, NY, NZ - 1), in file units;
+        refused (InputError) when missing, misshapen, NaN, infinite or negative.
+    """
     faces = []
     for axis, name in enumerate(AXES):
         key = f"t{name}"

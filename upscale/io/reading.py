@@ -19,7 +19,18 @@ from .validation import validate
 
 
 def file_checksum(path: str | os.PathLike) -> str:
-    """SHA-256 of a file's bytes, hex."""
+    """SHA-256 of a file's bytes.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The file, read in pieces of 1 MiB.
+
+    Returns
+    -------
+    str
+        The digest, hex.
+    """
     digest = hashlib.sha256()
     with open(path, "rb") as handle:
         for chunk in iter(lambda: handle.read(1 << 20), b""):
@@ -44,37 +55,60 @@ def _probe_header(path: Path) -> None:
     """
     if not hasattr(os, "fork"):
         return
-    import netCDF4  # imported before forking: the parent needs it next anyway
+    import netCDF4  # noqa: F401 - imported before forking: the parent needs it next anyway
 
     read_end, write_end = os.pipe()
     pid = os.fork()
-    if pid == 0:  # child: never returns
-        status = 0
-        try:
-            os.close(read_end)
-            null = os.open(os.devnull, os.O_WRONLY)
-            os.dup2(null, 1)
-            os.dup2(null, 2)  # HDF5 prints diagnostics on errors
-            try:  # a header that claims gigabytes fails to allocate instead of taking the memory
-                import resource
-
-                with open("/proc/self/status") as status_file:
-                    size = next(int(line.split()[1]) * 1024 for line in status_file if line.startswith("VmSize:"))
-                hard = resource.getrlimit(resource.RLIMIT_AS)[1]
-                resource.setrlimit(resource.RLIMIT_AS, (size + PROBE_MEMORY, hard))
-            except Exception:
-                pass  # no limit available here
-            try:
-                with netCDF4.Dataset(path) as nc:
-                    for var in nc.variables.values():
-                        var.ncattrs()
-            except BaseException as exc:
-                reason = (str(exc).splitlines() or [""])[0] or type(exc).__name__
-                os.write(write_end, reason.encode("utf-8", "replace")[:2000] or b"?")
-                status = 3
-        finally:
-            os._exit(status)
+    if pid == 0:
+        _probe_in_child(path, read_end, write_end)
     os.close(write_end)
+    ready, message = _probe_message(pid, read_end)
+    if not ready:
+        os.kill(pid, signal.SIGKILL)
+    _judge_probe(path, ready, _probe_status(pid, message), message)
+
+
+def _probe_in_child(path: Path, read_end: int, write_end: int) -> None:
+    """The forked child: open the header quietly within the memory limit, write the
+    reason of a failure to the pipe, and exit (status 3 on failure); never returns."""
+    status = 0
+    try:
+        os.close(read_end)
+        null = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(null, 1)
+        os.dup2(null, 2)  # HDF5 prints diagnostics on errors
+        _limit_address_space()
+        try:
+            import netCDF4
+
+            with netCDF4.Dataset(path) as nc:
+                for var in nc.variables.values():
+                    var.ncattrs()
+        except BaseException as exc:
+            reason = (str(exc).splitlines() or [""])[0] or type(exc).__name__
+            os.write(write_end, reason.encode("utf-8", "replace")[:2000] or b"?")
+            status = 3
+    finally:
+        os._exit(status)
+
+
+def _limit_address_space() -> None:
+    """Cap this process's address space at its size now plus :data:`PROBE_MEMORY`, so
+    that a header claiming gigabytes fails to allocate instead of taking the memory."""
+    try:
+        import resource
+
+        with open("/proc/self/status") as status_file:
+            size = next(int(line.split()[1]) * 1024 for line in status_file if line.startswith("VmSize:"))
+        hard = resource.getrlimit(resource.RLIMIT_AS)[1]
+        resource.setrlimit(resource.RLIMIT_AS, (size + PROBE_MEMORY, hard))
+    except Exception:
+        pass  # no limit available here
+
+
+def _probe_message(pid: int, read_end: int) -> tuple[bool, str]:
+    """Wait up to :data:`PROBE_SECONDS` for the child: (whether it answered, the reason
+    it wrote). The child is killed if the wait itself is interrupted."""
     try:
         ready, _, _ = select.select([read_end], [], [], PROBE_SECONDS)
         message = os.read(read_end, 4096).decode("utf-8", "replace") if ready else ""
@@ -84,12 +118,20 @@ def _probe_header(path: Path) -> None:
         raise
     finally:
         os.close(read_end)
-    if not ready:
-        os.kill(pid, signal.SIGKILL)
+    return bool(ready), message
+
+
+def _probe_status(pid: int, message: str) -> int:
+    """The child's wait status, once it has ended."""
     try:
         _, status = os.waitpid(pid, 0)
     except ChildProcessError:  # reaped elsewhere (SIGCHLD ignored): judge by the message alone
         status = 3 << 8 if message else 0
+    return status
+
+
+def _judge_probe(path: Path, ready: bool, status: int, message: str) -> None:
+    """Refuse the file if the child stayed silent, died of a signal or failed to open it."""
     if not ready:
         raise InputError(f"{path}: not a readable NetCDF file (the NetCDF library did not finish opening it "
                          f"within {PROBE_SECONDS:g} s; the file is probably corrupt)")
@@ -103,7 +145,23 @@ def _probe_header(path: Path) -> None:
 
 def check_readable(path: str | os.PathLike) -> Path:
     """Refuse a missing file, a folder, or a file whose header the NetCDF library cannot
-    open (:func:`_probe_header`)."""
+    open (:func:`_probe_header`).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The file to read.
+
+    Returns
+    -------
+    pathlib.Path
+        ``path``, once it has passed.
+
+    Raises
+    ------
+    InputError
+        Naming the file and why it cannot be read.
+    """
     path = Path(path)
     if not path.exists():
         raise InputError(f"{path}: no such file")
@@ -114,22 +172,38 @@ def check_readable(path: str | os.PathLike) -> Path:
 
 
 def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
-    """Read and validate a fine (or coarse) field file; returns a normalised Dataset.
+    """Read and validate a fine (or coarse) field file.
 
-    ``chunks`` (a dask chunk spec, e.g. ``{"x": 100}`` or ``"auto"``) opens the file lazily:
-    the checks run chunk by chunk in one pass and the values stay on disk until used
-    (``coarsen`` aligns the chunks to whole coarse blocks). Raises :class:`InputError`
-    naming the variable, the problem and the first bad cell.
+    Parameters
+    ----------
+    path : str or os.PathLike
+        A NetCDF field file.
+    chunks : dict or str, optional
+        A dask chunk spec, e.g. ``{"x": 100}`` or ``"auto"``: opens the file lazily; the
+        checks run chunk by chunk in one pass and the values stay on disk until used
+        (``coarsen`` aligns the chunks to whole coarse blocks). None reads it all now.
+
+    Returns
+    -------
+    xarray.Dataset
+        The normalised field (:func:`~upscale.io.validation.validate`), with attributes
+        ``source_path`` and ``source_sha256``.
+
+    Raises
+    ------
+    InputError
+        Naming the variable, the problem and the first bad cell, or why the file cannot
+        be read.
     """
     path = check_readable(path)
     try:
-        # no time decoding: a field holds no times, and units such as 'days since ...' on a
-        # cell size must be refused as unknown units, not turned into dates
         # errstate: overflow or NaN from scale_factor/add_offset is reported by validate, not as
         # numpy warnings that break the one-line error
         with np.errstate(all="ignore"), warnings.catch_warnings():
             # chunks along x also cut the (small) cell-size variables, stored whole
             warnings.filterwarnings("ignore", message="The specified chunks separate", category=UserWarning)
+            # no time decoding: a field holds no times, and units such as 'days since ...' on a
+            # cell size must be refused as unknown units, not turned into dates
             raw = xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False,
                                   chunks=chunks)
             if chunks is None:
@@ -153,5 +227,6 @@ def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
 
 
 def _unreadable(path: Path, exc: Exception) -> InputError:
+    """The refusal of a file the NetCDF library failed on, with the first line of its error."""
     reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
     return InputError(f"{path}: not a readable NetCDF file ({reason})")

@@ -24,9 +24,32 @@ def fine_dataset(kx, ky, kz, porosity, dx, dy, dz, ntg=None, active=None,
                  length_units: str = "m", attrs: dict | None = None) -> xr.Dataset:
     """Build a dataset in the fine-field schema from numpy (or dask) arrays.
 
-    Permeability in mD; dx (nx,), dy (ny,), dz (nz,) or (nx, ny, nz) in ``length_units``.
+    Parameters
+    ----------
+    kx, ky, kz : array_like, shape (nx, ny, nz)
+        Permeability along x, y, z, mD.
+    porosity : array_like, shape (nx, ny, nz)
+        Porosity, fraction.
+    dx, dy : array_like, shape (nx,) and (ny,)
+        Cell sizes along x and y, in ``length_units``.
+    dz : array_like, shape (nz,) or (nx, ny, nz)
+        Cell thickness, in ``length_units``.
+    ntg : array_like, shape (nx, ny, nz), optional
+        Net-to-gross, fraction; left out when None.
+    active : array_like, shape (nx, ny, nz), optional
+        Active cell flag (1 active, 0 inactive); left out when None.
+    length_units : str
+        Units of dx, dy, dz, e.g. "m" or "ft".
+    attrs : dict, optional
+        Global attributes, added to ``Conventions``.
+
+    Returns
+    -------
+    xarray.Dataset
+        The field on dimensions (x, y, z); dask arrays stay lazy.
     """
-    def floats(a):  # dask arrays stay lazy
+    def floats(a):
+        """Float array; a dask array stays lazy."""
         return a.astype(float) if hasattr(a, "dask") else np.asarray(a, dtype=float)
 
     kx = floats(kx)
@@ -51,7 +74,19 @@ def fine_dataset(kx, ky, kz, porosity, dx, dy, dz, ntg=None, active=None,
 
 
 def arrays(ds: xr.Dataset) -> GridArrays:
-    """The numpy arrays of a normalised field (see :func:`validate`)."""
+    """The numpy arrays of a normalised field.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        A normalised field (:func:`upscale.io.validation.validate`).
+
+    Returns
+    -------
+    GridArrays
+        dx (nx,), dy (ny,) in m; dz, kx, ky, kz, porosity, ntg (nx, ny, nz) as floats
+        (m, mD, fractions); active (nx, ny, nz) as booleans.
+    """
     return GridArrays(
         dx=np.asarray(ds["dx"].values, dtype=float),
         dy=np.asarray(ds["dy"].values, dtype=float),

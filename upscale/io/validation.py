@@ -18,7 +18,19 @@ from .schema import PERMEABILITY
 
 @dataclass(frozen=True)
 class Check:
-    """One rule on the cells: ``mask`` (DataArray, numpy or dask) marks the bad ones."""
+    """One rule on the cells.
+
+    Parameters
+    ----------
+    mask : xarray.DataArray
+        True at the bad cells (numpy- or dask-backed).
+    name : str
+        The variable the rule is about.
+    problem : str
+        What is wrong with the bad cells, e.g. "is negative".
+    fix : str
+        A hint for the user, ending the message.
+    """
 
     mask: xr.DataArray
     name: str
@@ -33,6 +45,7 @@ def _first_flat_index(mask) -> int:
     import dask.array as da
 
     def first(block, block_info=None):
+        """Global flat index of the block's first set cell (int64 max if none)."""
         found = np.flatnonzero(block)
         if found.size == 0:
             return np.full((1,) * block.ndim, np.iinfo(np.int64).max)
@@ -44,8 +57,21 @@ def _first_flat_index(mask) -> int:
 
 
 def count_bad(checks: list[Check]) -> tuple[int, ...]:
-    """Bad cells of every check. A lazy field is counted slab by slab along x (its
-    chunks along x), one slab at a time, so that the pass holds one slab in memory."""
+    """Count the bad cells of every check.
+
+    A lazy field is counted slab by slab along x (its chunks along x), one slab at a
+    time, so that the pass holds one slab in memory.
+
+    Parameters
+    ----------
+    checks : list of Check
+        The rules to count.
+
+    Returns
+    -------
+    tuple of int
+        Bad cells of each check, in the order of ``checks``.
+    """
     import dask
 
     cube = next((c.mask for c in checks if c.mask.chunks is not None and c.mask.ndim == 3), None)
@@ -61,7 +87,22 @@ def count_bad(checks: list[Check]) -> tuple[int, ...]:
 
 
 def refuse_first(checks: list[Check], counts: tuple[int, ...], where: str) -> None:
-    """Raise for the first check with bad cells: count, first index and a hint."""
+    """Raise for the first check with bad cells: its count, first index and hint.
+
+    Parameters
+    ----------
+    checks : list of Check
+        The rules, in the order they are judged.
+    counts : tuple of int
+        Bad cells of each check (:func:`count_bad`).
+    where : str
+        What the message names first (a file, or "field", "coarse grid").
+
+    Raises
+    ------
+    InputError
+        For the first check whose count is not 0; nothing when all are 0.
+    """
     for check, count in zip(checks, counts):
         if count:
             index = np.unravel_index(_first_flat_index(check.mask.data), check.mask.shape)
@@ -81,14 +122,18 @@ def _unit_scale(ds: xr.Dataset, name: str, where: str, table: dict, default: str
 
 
 def _length_scale(ds: xr.Dataset, name: str, where: str) -> float:
+    """Factor from the units of length variable ``name`` to metres."""
     return _unit_scale(ds, name, where, LENGTH_TO_M, "m", "'m' or 'ft'")
 
 
 def _permeability_scale(ds: xr.Dataset, name: str, where: str) -> float:
+    """Factor from the units of permeability variable ``name`` to mD."""
     return _unit_scale(ds, name, where, PERMEABILITY_TO_MD, "mD", "'mD'")
 
 
 def _require_dims(ds: xr.Dataset, name: str, allowed: tuple[tuple[str, ...], ...], where: str) -> None:
+    """Refuse variable ``name`` unless its dimensions are one of ``allowed``; a mere
+    wrong order is told apart, with the transpose that fixes it."""
     dims = ds[name].dims
     if dims in allowed:
         return
@@ -100,11 +145,9 @@ def _require_dims(ds: xr.Dataset, name: str, allowed: tuple[tuple[str, ...], ...
     raise InputError(f"{where}: variable '{name}' has dimensions {got}, expected {wanted}")
 
 
-def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
-    """Check a dataset against the fine-field schema and return it normalised (see module
-    doc). Numpy- and dask-backed datasets go through the same rules; for a lazy one the
-    cell checks run chunk by chunk and the result stays lazy."""
-    where = ds.attrs.get("source_path", where) if where == "field" else where
+def _require_variables(ds: xr.Dataset, where: str) -> bool:
+    """Refuse a dataset missing a required variable; True when it holds the permeability
+    tensor kx, ky, kz (else it holds one isotropic ``k``)."""
     missing = [n for n in ("dx", "dy", "dz", "porosity") if n not in ds]
     has_tensor = all(n in ds for n in PERMEABILITY)
     if not has_tensor and "k" not in ds:
@@ -113,15 +156,23 @@ def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
     if missing:
         found = ", ".join(sorted(map(str, ds.data_vars))) or "none"
         raise InputError(f"{where}: missing variable(s) {', '.join(missing)} (found: {found})")
+    return has_tensor
+
+
+def _require_grid(ds: xr.Dataset, where: str) -> None:
+    """Refuse a dataset without the dimensions x, y, z, or with one of length 0."""
     for name in AXES:
         if name not in ds.dims:
             raise InputError(f"{where}: missing dimension '{name}' (dimensions are x, y, z)")
         if ds.sizes[name] == 0:
             raise InputError(f"{where}: dimension '{name}' has length 0")
+
+
+def _require_layout(ds: xr.Dataset, k_names: tuple[str, ...], where: str) -> None:
+    """Refuse schema variables on the wrong dimensions or not holding numbers."""
     _require_dims(ds, "dx", (("x",),), where)
     _require_dims(ds, "dy", (("y",),), where)
     _require_dims(ds, "dz", (("z",), AXES), where)
-    k_names = PERMEABILITY if has_tensor else ("k",)
     optional = [n for n in ("ntg", "active") if n in ds]
     for name in (*k_names, "porosity", *optional):
         _require_dims(ds, name, (AXES,), where)
@@ -130,44 +181,73 @@ def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
             raise InputError(f"{where}: variable '{name}' is not numeric (type {ds[name].dtype}); "
                              f"store it as numbers")
 
-    def variable(name: str, scale: float = 1.0) -> xr.DataArray:
-        return xr.DataArray(ds[name].variable.astype(float) * scale)
 
-    sizes = {n: variable(n, _length_scale(ds, n, where)) for n in ("dx", "dy", "dz")}
-    size_checks = []
-    for name, values in sizes.items():
-        size_checks.append(Check(~np.isfinite(values), name, "is NaN or infinite", "cell sizes must be finite"))
-        if name == "dz":
-            size_checks.append(Check(values < 0, name, "is negative", "thickness must be >= 0 (0 = pinched out)"))
-        else:
-            size_checks.append(Check(values <= 0, name, "is zero or negative", "cell sizes must be > 0"))
-    template = xr.DataArray(ds[k_names[0]].variable)
-    dz = sizes["dz"].broadcast_like(template).transpose(*AXES)
-    active = dz > 0
+def _floats(ds: xr.Dataset, name: str, scale: float = 1.0) -> xr.DataArray:
+    """Variable ``name`` as floats times ``scale``, without its coordinates."""
+    return xr.DataArray(ds[name].variable.astype(float) * scale)
+
+
+def _size_checks(sizes: dict[str, xr.DataArray]) -> list[Check]:
+    """The rules on dx, dy, dz (m): finite; dx, dy > 0; dz >= 0 (0 = pinched out)."""
     checks = []
-    if "active" in ds:
-        flag = variable("active")
-        checks.append(Check(~flag.isin((0.0, 1.0)), "active", "is not 0 or 1", "use 1 for active, 0 for inactive"))
-        active = active & (flag == 1.0)
-    values = {name: variable(name, _permeability_scale(ds, name, where)) for name in k_names}
-    values["porosity"] = variable("porosity")
-    values["ntg"] = variable("ntg") if "ntg" in ds else xr.ones_like(template, dtype=float)
+    for name, values in sizes.items():
+        checks.append(Check(~np.isfinite(values), name, "is NaN or infinite", "cell sizes must be finite"))
+        if name == "dz":
+            checks.append(Check(values < 0, name, "is negative", "thickness must be >= 0 (0 = pinched out)"))
+        else:
+            checks.append(Check(values <= 0, name, "is zero or negative", "cell sizes must be > 0"))
+    return checks
+
+
+def _active_cells(ds: xr.Dataset, dz: xr.DataArray) -> tuple[xr.DataArray, list[Check]]:
+    """The active cells (dz > 0 and, when present, ``active`` == 1), and the rule on the
+    ``active`` flag itself (none without one)."""
+    active = dz > 0
+    if "active" not in ds:
+        return active, []
+    flag = _floats(ds, "active")
+    check = Check(~flag.isin((0.0, 1.0)), "active", "is not 0 or 1", "use 1 for active, 0 for inactive")
+    return active & (flag == 1.0), [check]
+
+
+def _cell_values(ds: xr.Dataset, k_names: tuple[str, ...], template: xr.DataArray,
+                 where: str) -> dict[str, xr.DataArray]:
+    """Permeability (mD), porosity and ntg (1 when absent) as floats, by name."""
+    values = {name: _floats(ds, name, _permeability_scale(ds, name, where)) for name in k_names}
+    values["porosity"] = _floats(ds, "porosity")
+    values["ntg"] = _floats(ds, "ntg") if "ntg" in ds else xr.ones_like(template, dtype=float)
+    return values
+
+
+def _value_checks(values: dict[str, xr.DataArray], active: xr.DataArray) -> list[Check]:
+    """The rules on the cell values in active cells: finite, >= 0, fractions <= 1."""
+    checks = []
     for name, data in values.items():
         fix = ("flag such cells inactive with an 'active' variable, or fill them" if name != "ntg"
                else "flag such cells inactive, or fill them")
         checks.append(Check(active & ~np.isfinite(data), name, "is NaN or infinite in active cells", fix))
         checks.append(Check(active & (data < 0), name, "is negative in active cells",
-                             "permeability and fractions must be >= 0"))
+                            "permeability and fractions must be >= 0"))
         if name in ("porosity", "ntg"):
             checks.append(Check(active & (data > 1), name, "is above 1 in active cells",
-                                 "give fractions (0..1), not percent"))
-    refuse_first(size_checks, count_bad(size_checks), where)  # first: the other rules read dz
+                                "give fractions (0..1), not percent"))
+    return checks
+
+
+def _refuse_bad_cells(size_checks: list[Check], checks: list[Check], active: xr.DataArray, where: str) -> None:
+    """Judge the cell sizes first (the other rules read dz), then refuse a field without
+    any active cell, then judge the remaining rules."""
+    refuse_first(size_checks, count_bad(size_checks), where)
     inactive, *counts = count_bad([Check(~active, "active", "", "")] + checks)
     if inactive == active.size:
         raise InputError(f"{where}: no active cell (all cells pinched out or flagged inactive)")
     refuse_first(checks, tuple(counts), where)
-    if not has_tensor:
-        values.update(kx=values["k"], ky=values["k"], kz=values["k"])
+
+
+def _normalised(ds: xr.Dataset, sizes: dict[str, xr.DataArray], dz: xr.DataArray, active: xr.DataArray,
+                values: dict[str, xr.DataArray]) -> xr.Dataset:
+    """The normalised dataset: metres, mD, 3-D dz, zeros in inactive cells, the input's
+    attributes and its other variables unchanged."""
     normal = {n: xr.where(active, values[n], 0.0) for n in (*PERMEABILITY, "porosity", "ntg")}
     out = xr.Dataset(
         {
@@ -186,3 +266,45 @@ def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
             out[name] = ds[name]  # carried along unchanged: coarse-file extras such as tx, x_start
     out.attrs["length_units_in"] = str(ds["dx"].attrs.get("units", "m"))
     return out
+
+
+def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:
+    """Check a dataset against the fine-field schema and return it normalised.
+
+    Numpy- and dask-backed datasets go through the same rules; for a lazy one the cell
+    checks run chunk by chunk and the result stays lazy.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        A field in the schema (:mod:`upscale.io.schema`): dx (x,), dy (y,), dz (z,) or
+        (x, y, z), kx, ky, kz (or one ``k``), porosity, optionally ntg and active.
+    where : str
+        What refusals name first; the default "field" gives way to the dataset's
+        ``source_path`` attribute when it has one.
+
+    Returns
+    -------
+    xarray.Dataset
+        The normalised field (see the module doc of :mod:`upscale.io.schema`), with the
+        input's other variables and attributes, and ``length_units_in``.
+
+    Raises
+    ------
+    InputError
+        Naming the variable, the problem, the number of bad cells and the first of them.
+    """
+    where = ds.attrs.get("source_path", where) if where == "field" else where
+    k_names = PERMEABILITY if _require_variables(ds, where) else ("k",)
+    _require_grid(ds, where)
+    _require_layout(ds, k_names, where)
+    sizes = {n: _floats(ds, n, _length_scale(ds, n, where)) for n in ("dx", "dy", "dz")}
+    size_checks = _size_checks(sizes)
+    template = xr.DataArray(ds[k_names[0]].variable)
+    dz = sizes["dz"].broadcast_like(template).transpose(*AXES)
+    active, checks = _active_cells(ds, dz)
+    values = _cell_values(ds, k_names, template, where)
+    _refuse_bad_cells(size_checks, checks + _value_checks(values, active), active, where)
+    if k_names == ("k",):
+        values.update(kx=values["k"], ky=values["k"], kz=values["k"])
+    return _normalised(ds, sizes, dz, active, values)

@@ -19,7 +19,21 @@ from .validation import Check, count_bad, refuse_first
 
 
 def check_output_path(path: str | os.PathLike, inputs: tuple = ()) -> Path:
-    """Refuse an output path whose folder is missing or that names one of the inputs."""
+    """Refuse an output path whose folder is missing, that is a folder, or that names one
+    of the inputs.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The output file.
+    inputs : tuple
+        Paths of the inputs (None or empty entries are skipped).
+
+    Returns
+    -------
+    pathlib.Path
+        ``path``, once it has passed.
+    """
     path = Path(path)
     if not path.parent.resolve().is_dir():
         raise InputError(f"{path}: output folder '{path.parent}' does not exist; create it first")
@@ -32,10 +46,24 @@ def check_output_path(path: str | os.PathLike, inputs: tuple = ()) -> Path:
 
 
 def atomic_write(path: str | os.PathLike, write_to, hold_interrupt: bool = True) -> Path:
-    """Call ``write_to(temporary_path)`` next to ``path`` and rename it into place when
-    complete; Ctrl-C during the call ends it cleanly (held back until the call returns,
-    :func:`interrupt_after`, unless ``write_to`` guards its own file operations) and the
-    temporary file is removed."""
+    """Write a file under a temporary name next to ``path`` and rename it into place when
+    complete; the temporary file is removed if anything fails.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The file to write.
+    write_to : callable
+        Called with the temporary path; writes the whole file there.
+    hold_interrupt : bool
+        Hold Ctrl-C back until ``write_to`` returns (:func:`interrupt_after`), so that it
+        ends the call cleanly; False when ``write_to`` guards its own file operations.
+
+    Returns
+    -------
+    pathlib.Path
+        The path written, with the usual permissions (0666 less the umask).
+    """
     path = Path(path)
     handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
     os.close(handle)
@@ -80,8 +108,20 @@ def write_dataset(ds: xr.Dataset, path: str | os.PathLike) -> Path:
 
 
 def multiplier_csv(face_multipliers: dict[str, np.ndarray]) -> str:
-    """CSV text with columns i, j, k, direction, multiplier: one row per interior face,
-    the face between cell (i, j, k) and the next cell along the direction (0-based)."""
+    """Transmissibility multipliers as CSV text.
+
+    Parameters
+    ----------
+    face_multipliers : dict of str to numpy.ndarray
+        Direction ("x", "y", "z") to the multipliers of its interior faces, shape
+        (NX - 1, NY, NZ) along x and so on.
+
+    Returns
+    -------
+    str
+        Columns i, j, k, direction, multiplier: one row per interior face, the face
+        between cell (i, j, k) and the next cell along the direction (0-based).
+    """
     lines = ["i,j,k,direction,multiplier"]
     for name, m in face_multipliers.items():
         index = np.indices(m.shape).reshape(3, -1).T

@@ -11,13 +11,12 @@ from .._runtime import available_memory
 from ..core.grid import AXES
 from ..errors import InputError
 
-#: bytes one fine cell of a box costs while its task runs (window arrays, normalisation,
-#: local systems, halo chunks held by dask); measured about 320-430 B in the solves alone
-#: with flow and multipliers (the in-memory path), doubled for what dask holds around it
+#: bytes one fine cell of a box costs while its task runs: window arrays, normalisation,
+#: local systems, and the halo chunks dask holds around them
 BOX_BYTES_PER_CELL = 800
 
 
-#: memory one process needs before any box: python, numpy, numba, xarray, dask (measured ~250 MB)
+#: memory one process needs before any box: python, numpy, numba, xarray, dask
 PROCESS_BYTES = 300 * 2 ** 20
 
 
@@ -26,7 +25,18 @@ UNITS = {"": 1, "b": 1, "k": 2 ** 10, "kb": 2 ** 10, "m": 2 ** 20, "mb": 2 ** 20
 
 
 def parse_memory(text: str) -> int:
-    """Bytes in a size such as ``2GB``, ``800MB``, ``1.5g`` (binary units; plain numbers are bytes)."""
+    """Bytes in a memory size.
+
+    Parameters
+    ----------
+    text : str
+        A size such as ``2GB``, ``800MB``, ``1.5g`` (binary units; plain numbers are bytes).
+
+    Returns
+    -------
+    int
+        Bytes; refused (InputError) when not understood or too small for one process.
+    """
     match = re.fullmatch(r"\s*([0-9]*\.?[0-9]+)\s*([a-zA-Z]*)\s*", str(text))
     unit = match.group(2).lower() if match else None
     if match is None or unit not in UNITS:
@@ -39,7 +49,13 @@ def parse_memory(text: str) -> int:
 
 
 def default_memory() -> int:
-    """The budget when none is given: half the memory available now."""
+    """The budget when none is given.
+
+    Returns
+    -------
+    int
+        Half the memory available now, bytes.
+    """
     return available_memory() // 2
 
 
@@ -51,20 +67,40 @@ CONTIGUOUS_LAYERS = 4
 STORED_CHUNK_BYTES = 8 * 2 ** 20
 
 
-#: bytes per fine cell of an in-memory run (field, its checked copy, the solves; measured
-#: 110-430 B in the solves alone, from static averages to flow with multipliers and border)
+#: bytes per fine cell of an in-memory run (the field, its checked copy, the solves), for
+#: static averages and for flow upscaling or multipliers
 IN_MEMORY_BYTES_PER_CELL = {"static": 250, "flow": 600}
 
 
 def box_cells(memory: int) -> int:
-    """Fine cells per box (window) so that one process holding one box stays within ``memory`` bytes."""
+    """Fine cells per box (window) for a memory budget.
+
+    Parameters
+    ----------
+    memory : int
+        Budget of one process holding one box, bytes.
+
+    Returns
+    -------
+    int
+        Cells such that the process stays within ``memory``; at least 1.
+    """
     return max(int((memory - PROCESS_BYTES) // BOX_BYTES_PER_CELL), 1)
 
 
 class MemoryPlan:
-    """How a command fits its memory budget (bytes; None: :func:`default_memory`):
-    in memory when the field fits, else in boxes; ``workers`` local processes or a
-    ``cluster`` (where the budget is per worker) always use boxes."""
+    """How a command fits its memory budget: in memory when the field fits, else in boxes.
+
+    Parameters
+    ----------
+    memory : int or None
+        Budget of the whole run, bytes (of each worker on a cluster); None:
+        :func:`default_memory`.
+    workers : int, optional
+        Local worker processes; with them, always boxes.
+    cluster : bool
+        Boxes run on a running cluster; always boxes.
+    """
 
     def __init__(self, memory: int | None, workers: int | None = None, cluster: bool = False):
         self.memory = default_memory() if memory is None else memory
@@ -82,14 +118,29 @@ class MemoryPlan:
 
     @property
     def box_memory(self) -> int:
-        """Budget of one process holding one box."""
+        """Budget of one process holding one box, bytes."""
         if self.cluster or not self.workers:
             return self.memory
         # the writing process and every worker hold a process's own memory; workers a box each
         return int((self.memory - PROCESS_BYTES) / self.workers)
 
     def chunked(self, path, method: str, multipliers: bool) -> bool:
-        """Boxes needed for the field in ``path``? (reads only the header)"""
+        """Whether the field needs boxes.
+
+        Parameters
+        ----------
+        path : str or os.PathLike
+            The field file; only its header is read.
+        method : str
+            The upscaling method(s), e.g. "flow" or "arithmetic,arithmetic,harmonic".
+        multipliers : bool
+            Whether multipliers are computed.
+
+        Returns
+        -------
+        bool
+            True with workers or a cluster, or when an in-memory run would exceed the budget.
+        """
         if self.workers or self.cluster:
             return True
         import netCDF4
@@ -102,8 +153,20 @@ class MemoryPlan:
         return PROCESS_BYTES + cells * per_cell > self.memory
 
     def open(self, path) -> xr.Dataset:
-        """Open a field lazily in slabs along x small enough for the checks to stay in
-        budget (about 1/32 of it per variable) and no thicker than the file's own chunks."""
+        """Open a field lazily in slabs along x.
+
+        Parameters
+        ----------
+        path : str or os.PathLike
+            The field file.
+
+        Returns
+        -------
+        xarray.Dataset
+            The normalised field (:func:`~upscale.io.reading.open_field`), chunked in slabs
+            small enough for the checks to stay in budget (about 1/32 of it per variable)
+            and no thicker than the file's own chunks.
+        """
         import netCDF4
 
         from ..io.reading import check_readable, open_field

@@ -28,7 +28,7 @@ from .memory import STORED_CHUNK_BYTES
 @contextmanager
 def _file_access():
     """Around every call into the NetCDF library here: Ctrl-C held back until it returns
-    (:func:`upscale.field.interrupt_after`), and the lock xarray takes for its own reads,
+    (:func:`upscale._runtime.interrupt_after`), and the lock xarray takes for its own reads,
     since HDF5 is not thread-safe and an in-process worker may be reading the input."""
     from xarray.backends.netCDF4_ import NETCDF4_PYTHON_LOCK
 
@@ -37,17 +37,47 @@ def _file_access():
 
 
 def stream_write(ds: xr.Dataset, path, progress=None) -> None:
-    """Write a dataset whose variables may be dask arrays to NetCDF at ``path``, box by
-    box: the pieces of all variables that belong to one box are written by one task as
-    soon as they are computed, then dropped. The graph runs on threads of this process;
-    the heavy box tasks inside it go to the active dask.distributed client, if any
-    (:func:`_run_graph`). Permeabilities are checked for NaN, infinite or negative values
-    in active cells before each piece is written. ``progress`` receives 1 per box."""
+    """Write a dataset whose variables may be dask arrays to NetCDF, box by box.
+
+    The pieces of all variables that belong to one box are written by one task as soon
+    as they are computed, then dropped. The graph runs on threads of this process; the
+    heavy box tasks inside it go to the active dask.distributed client, if any
+    (:func:`~upscale.scale.boxes._run_graph`). Permeabilities are checked for NaN,
+    infinite or negative values in active cells before each piece is written.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        The dataset; its numpy-backed variables are written first, whole.
+    path : str or os.PathLike
+        The file to write (directly: :func:`write` makes it atomic).
+    progress : callable, optional
+        Receives 1 per box written.
+    """
     import dask
     import netCDF4
-    from dask.callbacks import Callback
 
     lazy = {n: v for n, v in ds.variables.items() if v.chunks is not None}
+    groups = _box_groups(lazy)
+    with _file_access():
+        handle = netCDF4.Dataset(path, "w", format="NETCDF4")
+    stores = _store_tasks(handle, groups, ds, path)
+    try:
+        with _file_access():
+            _define(handle, ds)
+            for name, var in ds.variables.items():
+                if name not in lazy:
+                    handle[name][...] = np.asarray(var.values)
+        with _box_progress(progress):
+            dask.compute(*stores, scheduler="threads", num_workers=_threads())
+    finally:
+        with _file_access():
+            handle.close()
+
+
+def _box_groups(lazy: dict) -> dict[tuple, list]:
+    """The pieces of the lazy variables by box key: (name, region in global indices,
+    delayed chunk) each."""
     groups: dict[tuple, list] = {}
     for name, var in lazy.items():
         starts = [np.concatenate([[0], np.cumsum(c)[:-1]]) for c in var.chunks]
@@ -55,10 +85,16 @@ def stream_write(ds: xr.Dataset, path, progress=None) -> None:
         for index, key in box_keys(var):
             region = tuple((int(s[i]), int(s[i]) + int(c[i])) for s, c, i in zip(starts, var.chunks, index))
             groups.setdefault(key, []).append((name, region, blocks[index]))
-    with _file_access():
-        handle = netCDF4.Dataset(path, "w", format="NETCDF4")
+    return groups
+
+
+def _store_tasks(handle, groups: dict, ds: xr.Dataset, path) -> list:
+    """One delayed task per box, in box order, checking its pieces and writing them into
+    the open file ``handle``; its key starts with "store-box-"."""
+    import dask
 
     def store(places, *pieces):
+        """Check one box's pieces and write them; their count."""
         written = dict(zip(places, pieces))
         _check_pieces(written, ds, path)
         with _file_access():
@@ -67,25 +103,21 @@ def stream_write(ds: xr.Dataset, path, progress=None) -> None:
                     handle[name][tuple(slice(*r) for r in region)] = piece
         return len(pieces)
 
-    stores = [dask.delayed(store, pure=False, name=f"store-box-{'-'.join(map(str, key))}")(
+    return [dask.delayed(store, pure=False, name=f"store-box-{'-'.join(map(str, key))}")(
         [(n, r) for n, r, _ in groups[key]], *[b for _, _, b in groups[key]]) for key in sorted(groups)]
+
+
+def _box_progress(progress):
+    """A dask callback calling ``progress(1)`` as each box's store task ends."""
+    from dask.callbacks import Callback
 
     class Progress(Callback):
         def _posttask(self, key, result, dsk, state, worker_id):
+            """Count a finished store task."""
             if progress is not None and str(key).startswith("store-box-"):
                 progress(1)
 
-    try:
-        with _file_access():
-            _define(handle, ds)
-            for name, var in ds.variables.items():
-                if name not in lazy:
-                    handle[name][...] = np.asarray(var.values)
-        with Progress():
-            dask.compute(*stores, scheduler="threads", num_workers=_threads())
-    finally:
-        with _file_access():
-            handle.close()
+    return Progress()
 
 
 def _threads() -> int:
