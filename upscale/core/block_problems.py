@@ -15,7 +15,7 @@ With a border, the local domain reaches ``border`` fine cells into the neighbour
 (clipped at the model edge) and the tensor is -<u> <grad p>^-1 with both averages taken
 over the target block only (Wu, Efendiev & Hou 2002; Wen, Durlofsky & Edwards 2003).
 Blocks of one local shape are solved together: vectorised assembly into banded
-matrices and a batched Cholesky factorisation (:mod:`upscale.solvers`).
+matrices and a batched Cholesky factorisation (:mod:`upscale.core.banded`).
 
 Units: permeability mD, lengths m; tensors are effective (flow) permeabilities in mD.
 Cells with no connection to the boundary (pockets closed by zero permeability) are
@@ -55,8 +55,17 @@ GRADIENT_FLOOR = 1e-12  # of the imposed mean gradient (unit drop over the domai
 
 @dataclass(frozen=True)
 class FlowResult:
-    """Per coarse block: effective tensor (NX, NY, NZ, 3, 3) in mD, relative residual of
-    the local solves, and the relative asymmetry ||K - K^T|| / ||K|| before symmetrising."""
+    """Flow-based results per coarse block.
+
+    Attributes
+    ----------
+    tensor : ndarray, (NX, NY, NZ, 3, 3)
+        Effective tensor, mD.
+    residual : ndarray, (NX, NY, NZ)
+        Relative residual of the local solves.
+    asymmetry : ndarray, (NX, NY, NZ)
+        Relative asymmetry ||K - K^T|| / ||K|| before symmetrising.
+    """
 
     tensor: np.ndarray
     residual: np.ndarray
@@ -65,7 +74,17 @@ class FlowResult:
 
 @dataclass
 class LocalDomain:
-    """A batch of local domains of one shape: arrays (nb, sx, sy, sz)."""
+    """A batch of local domains of one shape.
+
+    Attributes
+    ----------
+    k : tuple of three ndarray, (nb, sx, sy, sz)
+        Flow permeability per axis, mD.
+    lengths : tuple of three ndarray, (nb, sx, sy, sz)
+        Cell lengths along each axis, m.
+    target : tuple of three slices
+        The target block inside each domain (the rest is border ring).
+    """
 
     k: tuple[np.ndarray, np.ndarray, np.ndarray]
     lengths: tuple[np.ndarray, np.ndarray, np.ndarray]
@@ -73,14 +92,17 @@ class LocalDomain:
 
     @property
     def shape(self) -> tuple[int, int, int]:
+        """(sx, sy, sz)."""
         return self.k[0].shape[1:]
 
     @property
     def count(self) -> int:
+        """Number of domains nb."""
         return self.k[0].shape[0]
 
     @cached_property
     def volume(self) -> np.ndarray:
+        """Cell bulk volumes (nb, sx, sy, sz), m3."""
         lx, ly, lz = self.lengths
         return lx * ly * lz
 
@@ -98,6 +120,7 @@ class LocalDomain:
 
     @property
     def bordered(self) -> bool:
+        """Whether the domains reach beyond the target block."""
         return any(t.start != 0 or t.stop != n for t, n in zip(self.target, self.shape))
 
 
@@ -110,11 +133,24 @@ def _take(a: np.ndarray, axis: int, index: int | slice) -> np.ndarray:
 
 @lru_cache(maxsize=64)
 def band_order(shape: tuple[int, int, int], periodic: bool, slowest: int | None = None) -> tuple[np.ndarray, int]:
-    """Band position of each cell (natural C order, read-only) and the half bandwidth.
+    """Band position of each cell of a local shape, and the half bandwidth.
 
     The largest axis varies slowest (``slowest`` first among equally long ones, which
     leaves the bandwidth unchanged). For periodic problems each axis is visited in the
     order 0, n-1, 1, n-2, ... so that wrap-around neighbours stay close.
+
+    Parameters
+    ----------
+    shape : (int, int, int)
+    periodic : bool
+    slowest : int, optional
+        The axis to vary slowest among equally long ones.
+
+    Returns
+    -------
+    position : ndarray of int, (sx * sy * sz,)
+        Per cell in natural C order; read-only (cached, shared by every batch).
+    width : int
     """
     order = sorted(range(3), key=lambda a: (shape[a], a == slowest), reverse=True)
     positions = []
@@ -141,9 +177,17 @@ def band_order(shape: tuple[int, int, int], periodic: bool, slowest: int | None 
 
 @dataclass
 class Couplings:
-    """Transmissibilities of a batch (mD*m): ``half`` per axis on cells, ``inner`` per axis
-    on interior faces (n - 1 along the axis), ``wrap`` per axis between the last and first
-    cell (periodic problems only, else None)."""
+    """Transmissibilities of a batch, mD*m.
+
+    Attributes
+    ----------
+    half : list of three ndarray, (nb, sx, sy, sz)
+        Half-cell values per axis.
+    inner : list of three ndarray
+        Per axis, on the interior faces (n - 1 along the axis).
+    wrap : list of three ndarray or None
+        Per axis, between the last and the first cell (periodic problems only, else None).
+    """
 
     half: list[np.ndarray]
     inner: list[np.ndarray]
@@ -179,7 +223,7 @@ def _layout(shape: tuple[int, int, int], periodic: bool):
 
 @njit(cache=True)
 def _series(h1, h2):  # pragma: no cover - compiled
-    """Series combination of two half transmissibilities, 0 if both are 0 (as tpfa.harmonic_pair)."""
+    """Series combination of two half transmissibilities, 0 if both are 0 (as two_point.harmonic_pair)."""
     total = h1 + h2
     return h1 * h2 / total if total > 0.0 else 0.0
 
@@ -188,7 +232,7 @@ def _series(h1, h2):  # pragma: no cover - compiled
 def _fill_couplings(kx, ky, kz, lx, ly, lz, inner_start, wrap_start, half, values, total):  # pragma: no cover
     """Half transmissibilities (3, nb, sx, sy, sz), the coupling list values (nb, E) in
     :func:`_layout` order and each cell's coupling sum (nb, sx, sy, sz), all mD*m, from
-    permeabilities and cell lengths (nb, sx, sy, sz); the formulas of :mod:`upscale.tpfa`
+    permeabilities and cell lengths (nb, sx, sy, sz); the formulas of :mod:`upscale.core.two_point`
     in one pass."""
     nb, sx, sy, sz = kx.shape
     size = (sx, sy, sz)
@@ -251,10 +295,20 @@ def _couplings(domain: LocalDomain, periodic: bool):
 
 @dataclass
 class Components:
-    """Connected components of a batch over positive transmissibilities: the label of
-    every cell (nb * n,), the first cell of every component (flat indices), the domains
-    with a non-positive coupling (the others are one component, labelled by their
-    index) and the number of labels in use (labels are below it)."""
+    """Connected components of a batch over positive transmissibilities.
+
+    Attributes
+    ----------
+    labels : ndarray of int, (nb * n,)
+        The label of every cell.
+    start : ndarray of int
+        The first cell of every component (flat indices).
+    broken : ndarray of int
+        The domains with a non-positive coupling (the others are one component, labelled
+        by their index).
+    count : int
+        The number of labels in use (labels are below it).
+    """
 
     labels: np.ndarray
     start: np.ndarray
@@ -285,7 +339,13 @@ def _components(first, second, values, nb: int, n: int, domains: np.ndarray | No
 
 @dataclass
 class Boundary:
-    """Per axis: 'dirichlet', 'noflow' or 'periodic'."""
+    """The boundary condition of one system.
+
+    Attributes
+    ----------
+    kinds : (str, str, str)
+        Per axis: 'dirichlet', 'noflow' or 'periodic'.
+    """
 
     kinds: tuple[str, str, str]
 
@@ -328,6 +388,7 @@ def _face_coordinates(domain: LocalDomain, a: int) -> np.ndarray:
 
 
 def _cell_centres(domain: LocalDomain, a: int) -> np.ndarray:
+    """Coordinate along axis a of the cell centres, from the domain's start (m)."""
     faces = _face_coordinates(domain, a)
     n = domain.shape[a]
     return 0.5 * (_take(faces, a, slice(0, n)) + _take(faces, a, slice(1, n + 1)))
@@ -420,9 +481,17 @@ def _target_averages(domain: LocalDomain, fluxes, pressures, connected):
 
 @dataclass
 class Solved:
-    """Pressures of one system for each case (nb, sx, sy, sz; none when only a rate was
-    solved for), the Dirichlet-touch and boundary-connected cell masks, and the relative
-    residual per domain (nb,)."""
+    """The solution of one system of a batch.
+
+    Attributes
+    ----------
+    pressures : list of ndarray, (nb, sx, sy, sz)
+        One per case; none when only a rate was solved for.
+    touch, connected : ndarray of bool, (nb, sx, sy, sz)
+        The Dirichlet-touch and boundary-connected cell masks.
+    residual : ndarray, (nb,)
+        Relative residual per domain.
+    """
 
     pressures: list[np.ndarray]
     touch: np.ndarray
@@ -432,7 +501,30 @@ class Solved:
 
 class LocalProblem:
     """Transmissibilities, connectivity and band ordering of a batch of local domains,
-    shared by the systems (boundary conditions) solved on it."""
+    shared by the systems (boundary conditions) solved on it.
+
+    Parameters
+    ----------
+    domain : LocalDomain
+    periodic : bool
+        Couple each axis's last cell to its first (periodic problems).
+    slowest : int, optional
+        The axis to vary slowest in the band order among equally long ones.
+
+    Attributes
+    ----------
+    domain : LocalDomain
+    n : int
+        Cells per domain.
+    couplings : Couplings
+    first, second, values : ndarray
+        The coupling list: cells (E,) and values (nb, E), mD*m.
+    coupling_sum : ndarray, (nb, sx, sy, sz)
+        Each cell's sum of couplings.
+    components : Components
+    pos, width : ndarray, int
+        Band position of each cell and half bandwidth (:func:`band_order`).
+    """
 
     def __init__(self, domain: LocalDomain, periodic: bool, slowest: int | None = None):
         self.domain = domain
@@ -444,9 +536,21 @@ class LocalProblem:
 
     @classmethod
     def leading(cls, whole: "LocalProblem", axis: int, stop: int) -> "LocalProblem":
-        """The problem on the first ``stop`` cells along ``axis`` of ``whole``'s domains (no
-        periodic axes), cut from ``whole``'s transmissibilities and components instead of
-        recomputed: only domains with a non-positive coupling in ``whole`` can have one here."""
+        """The problem on the first ``stop`` cells along ``axis`` of ``whole``'s domains.
+
+        Cut from ``whole``'s transmissibilities and components instead of recomputed: only
+        domains with a non-positive coupling in ``whole`` can have one here.
+
+        Parameters
+        ----------
+        whole : LocalProblem
+            Without periodic axes.
+        axis, stop : int
+
+        Returns
+        -------
+        LocalProblem
+        """
         self = cls.__new__(cls)
         domain = leading_part(whole.domain, axis, stop)
         domain.volume = _take(whole.domain.volume, axis, slice(0, stop))
@@ -471,8 +575,23 @@ class LocalProblem:
         return np.concatenate([t.reshape(self.domain.count, -1) for t in self.couplings.inner], axis=1)
 
     def system(self, boundary: Boundary, bc: str, cases: tuple[int, ...]):
-        """Diagonal (nb, n), Dirichlet-touch and connected masks, and right-hand sides
-        (nb, len(cases), n) of one system for the unit-gradient cases along the given axes."""
+        """One system for the unit-gradient cases along the given axes.
+
+        Parameters
+        ----------
+        boundary : Boundary
+        bc : str
+            One of :data:`BOUNDARY_CONDITIONS`.
+        cases : tuple of int
+            The axes of the unit mean gradients.
+
+        Returns
+        -------
+        diagonal : ndarray, (nb, n)
+        touch, connected : ndarray of bool, (nb, sx, sy, sz)
+            Dirichlet-touch and connected masks.
+        rhs : ndarray, (nb, len(cases), n)
+        """
         domain, n = self.domain, self.n
         nb = domain.count
         diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.components)
@@ -482,24 +601,67 @@ class LocalProblem:
         return diag.reshape(nb, n), touch, connected, rhs
 
     def solve(self, boundary: Boundary, bc: str, cases: tuple[int, ...]) -> Solved:
-        """Solve one system for the unit-gradient cases along the given axes."""
+        """Solve one system for the unit-gradient cases along the given axes.
+
+        Parameters
+        ----------
+        boundary, bc, cases
+            As for :meth:`system`.
+
+        Returns
+        -------
+        Solved
+        """
         diag, touch, connected, rhs = self.system(boundary, bc, cases)
         solution, residual = solve_batch(self.first, self.second, self.pos, self.values, diag, rhs, self.width)
         return Solved(self.shaped(solution), touch, connected, residual)
 
     def shaped(self, solution: np.ndarray) -> list[np.ndarray]:
-        """Per case, the pressures (nb, sx, sy, sz) of a solution (nb, cases, n)."""
+        """Per case, the pressures of a solution.
+
+        Parameters
+        ----------
+        solution : ndarray, (nb, cases, n)
+
+        Returns
+        -------
+        list of ndarray, (nb, sx, sy, sz)
+        """
         return [solution[:, column].reshape((self.domain.count,) + self.domain.shape)
                 for column in range(solution.shape[1])]
 
     def inflow(self, p: np.ndarray, d: int) -> np.ndarray:
-        """Rate entering through the d- face at unit boundary pressure (mD*m per domain)."""
+        """Rate entering through the d- face at unit boundary pressure.
+
+        Parameters
+        ----------
+        p : ndarray, (nb, sx, sy, sz)
+            Pressures of a sealed solve along d.
+        d : int
+
+        Returns
+        -------
+        ndarray, (nb,)
+            mD*m.
+        """
         h = _take(self.couplings.half[d], d, 0)
         return (h * (1.0 - _take(p, d, 0))).reshape(self.domain.count, -1).sum(axis=1)
 
     def connected_through(self, touch: np.ndarray, d: int) -> np.ndarray:
         """Per domain: does a connected path join the two Dirichlet faces normal to d?
-        (Read on the two end layers: a component that reaches both touches the first.)"""
+
+        Read on the two end layers: a component that reaches both touches the first.
+
+        Parameters
+        ----------
+        touch : ndarray of bool, (nb, sx, sy, sz)
+            The Dirichlet-touch mask of the solve.
+        d : int
+
+        Returns
+        -------
+        ndarray of bool, (nb,)
+        """
         n = touch.shape[d + 1]
         labels = self.components.labels.reshape(touch.shape)
         reach = []
@@ -512,13 +674,38 @@ class LocalProblem:
 
 
 def sealed_boundary(d: int) -> Boundary:
-    """Unit pressure drop between the two faces normal to axis d, no flow elsewhere."""
+    """Unit pressure drop between the two faces normal to axis d, no flow elsewhere.
+
+    Parameters
+    ----------
+    d : int
+        The flow axis.
+
+    Returns
+    -------
+    Boundary
+    """
     return Boundary(tuple("dirichlet" if a == d else "noflow" for a in range(3)))
 
 
 def solve_domains(domain: LocalDomain, bc: str, directions=(0, 1, 2)) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Effective tensors (nb, 3, 3) in mD, residuals (nb,) and asymmetry (nb,) for a batch;
-    for ``sealed``, only the diagonal entries of ``directions`` are solved (others 0)."""
+    """Effective tensors of a batch of local domains.
+
+    Parameters
+    ----------
+    domain : LocalDomain
+    bc : str
+        One of :data:`BOUNDARY_CONDITIONS`.
+    directions : tuple of int
+        For ``sealed``, the diagonal entries solved (the others are 0).
+
+    Returns
+    -------
+    tensor : ndarray, (nb, 3, 3)
+        mD.
+    residual : ndarray, (nb,)
+    asymmetry : ndarray, (nb,)
+    """
     if bc not in BOUNDARY_CONDITIONS:
         raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
     nb = domain.count
@@ -540,8 +727,22 @@ def solve_domains(domain: LocalDomain, bc: str, directions=(0, 1, 2)) -> tuple[n
 
 def measure(problem: LocalProblem, solved: Solved, boundary: Boundary, bc: str, cases: tuple[int, ...],
             velocity: np.ndarray, gradient: np.ndarray) -> None:
-    """Fill the columns ``cases`` of the target-averaged velocity and pressure gradient
-    (nb, 3, 3) from the solved pressures (for sealed without border: the inflow form)."""
+    """Fill the columns ``cases`` of the target-averaged velocity and pressure gradient.
+
+    For sealed domains without a border the inflow form (:func:`_sealed_unbordered`).
+
+    Parameters
+    ----------
+    problem : LocalProblem
+    solved : Solved
+        Its solution for ``boundary``.
+    boundary : Boundary
+    bc : str
+    cases : tuple of int
+        The axes of the solved cases, in the order of ``solved.pressures``.
+    velocity, gradient : ndarray, (nb, 3, 3)
+        Filled in place.
+    """
     domain = problem.domain
     for case, p in zip(cases, solved.pressures):
         if bc == "sealed":
@@ -558,8 +759,23 @@ def measure(problem: LocalProblem, solved: Solved, boundary: Boundary, bc: str, 
 
 def sealed_permeability(problem: LocalProblem, solved: Solved, axis: int, rate: np.ndarray | None = None
                         ) -> np.ndarray:
-    """Sealed effective permeability along ``axis`` (nb,) in mD from that axis's solve, or
-    for domains without a border from the rate through them at unit drop (mD*m) when given."""
+    """Sealed effective permeability along ``axis``.
+
+    Parameters
+    ----------
+    problem : LocalProblem
+    solved : Solved
+        The sealed solve along ``axis``.
+    axis : int
+    rate : ndarray, (nb,), optional
+        For domains without a border: the rate through them at unit drop (mD*m), used
+        instead of the pressures.
+
+    Returns
+    -------
+    ndarray, (nb,)
+        mD.
+    """
     nb = problem.domain.count
     velocity, gradient = np.zeros((nb, 3, 3)), np.zeros((nb, 3, 3))
     if rate is None:
@@ -571,7 +787,17 @@ def sealed_permeability(problem: LocalProblem, solved: Solved, axis: int, rate: 
 
 
 def leading_part(domain: LocalDomain, axis: int, stop: int) -> LocalDomain:
-    """The first ``stop`` cells along ``axis`` of every domain of a batch (views), same target."""
+    """The first ``stop`` cells along ``axis`` of every domain of a batch (views), same target.
+
+    Parameters
+    ----------
+    domain : LocalDomain
+    axis, stop : int
+
+    Returns
+    -------
+    LocalDomain
+    """
     def cut(a):
         return _take(a, axis, slice(0, stop))
 
@@ -581,15 +807,26 @@ def leading_part(domain: LocalDomain, axis: int, stop: int) -> LocalDomain:
 
 def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int
                        ) -> tuple[Solved, Solved, np.ndarray | None] | None:
-    """Sealed solves along ``axis`` of a batch and of its leading part ``lead`` (a
-    :func:`leading_part` of the same domains) in one kernel call, sharing the elimination
-    of the cells they have in common (:func:`upscale.solvers.solve_assembled`). None when
-    the leading part does not come first in the batch's band order.
+    """Sealed solves along ``axis`` of a batch and of its leading part in one kernel call.
 
-    Returns (the batch's Solved, the leading part's, its rate at unit drop (nb,) or
-    None). Without a border only that rate is needed (:func:`sealed_permeability`): it is
-    solved for as the flow through the outflow face, sum h p over the last layer, and
-    the leading part's Solved has no pressures."""
+    The two share the elimination of the cells they have in common
+    (:func:`upscale.core.banded.solve_assembled`). Without a border only the leading part's
+    rate is needed (:func:`sealed_permeability`): it is solved for as the flow through the
+    outflow face, sum h p over the last layer, and the leading part's Solved has no pressures.
+
+    Parameters
+    ----------
+    problem : LocalProblem
+    lead : LocalProblem
+        A :meth:`LocalProblem.leading` part of the same domains.
+    axis : int
+
+    Returns
+    -------
+    tuple or None
+        (the batch's Solved, the leading part's, its rate at unit drop (nb,) or None);
+        None when the leading part does not come first in the batch's band order.
+    """
     shape = problem.domain.shape
     inside = np.arange(problem.n).reshape(shape)
     inside = _take(inside[None], axis, slice(0, lead.domain.shape[axis]))[0].ravel()
@@ -598,12 +835,7 @@ def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int
     boundary = sealed_boundary(axis)
     diag, touch, connected, rhs = problem.system(boundary, "sealed", (axis,))
     lead_diag, lead_touch, lead_connected, lead_rhs = lead.system(boundary, "sealed", (axis,))
-    outflow = None
-    if not lead.domain.bordered:
-        outflow = np.zeros((lead.domain.count,) + lead.domain.shape)
-        end = lead.domain.shape[axis] - 1
-        _take(outflow, axis, end)[...] = _take(lead.couplings.half[axis], axis, end)
-        outflow = outflow.reshape(lead.domain.count, lead.n)
+    outflow = None if lead.domain.bordered else _outflow_weights(lead, axis)
     x, residual, x_lead, residual_lead = solve_batch_with_lead(
         problem.first, problem.second, problem.pos, problem.values, diag, rhs, problem.width, inside, lead_diag,
         lead_rhs, outflow)
@@ -613,7 +845,16 @@ def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int
     return solved, Solved([], lead_touch, lead_connected, residual_lead), x_lead[:, 0]
 
 
+def _outflow_weights(problem: LocalProblem, axis: int) -> np.ndarray:
+    """Half transmissibilities of the outflow face's cells along ``axis``, 0 elsewhere (nb, n)."""
+    outflow = np.zeros((problem.domain.count,) + problem.domain.shape)
+    end = problem.domain.shape[axis] - 1
+    _take(outflow, axis, end)[...] = _take(problem.couplings.half[axis], axis, end)
+    return outflow.reshape(problem.domain.count, problem.n)
+
+
 def _right_hand_side(domain, couplings: Couplings, boundary: Boundary, bc: str, case: int) -> np.ndarray:
+    """Right-hand side (nb, sx, sy, sz) of one case: the Dirichlet and periodic jump terms."""
     rhs = np.zeros(domain.k[0].shape)
     for a in range(3):
         n = domain.shape[a]
@@ -640,31 +881,42 @@ def _sealed_unbordered(domain, q, through, d, velocity, gradient):
 
 
 def _tensor(domain, bc, velocity, gradient, residual):
+    """Tensors (nb, 3, 3) in mD, residuals and asymmetry of a batch from the target-averaged
+    velocity and pressure gradient (nb, 3, 3): k = -<u> <grad p>^-1, symmetrised."""
     nb = domain.count
     if bc == "sealed":
-        g = np.einsum("bii->bi", gradient)
-        u = np.einsum("bii->bi", velocity)
-        k = np.zeros((nb, 3, 3))
-        diagonal = np.zeros((nb, 3))
-        # A target block that no flow crosses (closed inside a bordered domain) has a
-        # gradient at rounding level, of either sign: it counts as none, k = 0.
-        length = domain.extent
-        np.divide(-u, g, out=diagonal, where=g < -GRADIENT_FLOOR / np.where(length > 0, length, np.inf))
-        k[:, np.arange(3), np.arange(3)] = np.maximum(diagonal, 0.0)
-        return k, residual, np.zeros(nb)
-    if not domain.bordered:
-        gradient = np.broadcast_to(-np.eye(3), (nb, 3, 3))
-    # A direction in which the target shows no pressure gradient (a dead end inside a
-    # bordered domain: a gradient at rounding level, velocity too) carries no flow: it is
-    # left out of the inverse (singular values below GRADIENT_FLOOR of the unit imposed
-    # mean gradient), rather than dividing two rounding errors.
-    left, values, right = np.linalg.svd(gradient)
-    kept = np.where(values > GRADIENT_FLOOR, 1.0 / np.maximum(values, GRADIENT_FLOOR), 0.0)
-    k = -velocity @ np.einsum("bji,bj,bkj->bik", right, kept, left)
+        return _sealed_tensor(domain, velocity, gradient), residual, np.zeros(nb)
+    k = _full_tensor(domain, velocity, gradient)
     norm = np.linalg.norm(k, axis=(1, 2))
     asymmetry = np.divide(np.linalg.norm(k - k.transpose(0, 2, 1), axis=(1, 2)), norm,
                           out=np.zeros(nb), where=norm > 0)
     return _positive_semidefinite(0.5 * (k + k.transpose(0, 2, 1))), residual, asymmetry
+
+
+def _sealed_tensor(domain, velocity, gradient):
+    """Diagonal tensors -u_dd / g_dd. A target block that no flow crosses (closed inside a
+    bordered domain) has a gradient at rounding level, of either sign: it counts as none, k = 0."""
+    nb = domain.count
+    g = np.einsum("bii->bi", gradient)
+    u = np.einsum("bii->bi", velocity)
+    k = np.zeros((nb, 3, 3))
+    diagonal = np.zeros((nb, 3))
+    length = domain.extent
+    np.divide(-u, g, out=diagonal, where=g < -GRADIENT_FLOOR / np.where(length > 0, length, np.inf))
+    k[:, np.arange(3), np.arange(3)] = np.maximum(diagonal, 0.0)
+    return k
+
+
+def _full_tensor(domain, velocity, gradient):
+    """-<u> <grad p>^-1, the gradient the imposed one (-I) without a border. A direction in
+    which the target shows no pressure gradient (a dead end inside a bordered domain: a
+    gradient at rounding level, velocity too) carries no flow: it is left out of the inverse
+    (singular values below GRADIENT_FLOOR of the unit imposed mean gradient)."""
+    if not domain.bordered:
+        gradient = np.broadcast_to(-np.eye(3), (domain.count, 3, 3))
+    left, values, right = np.linalg.svd(gradient)
+    kept = np.where(values > GRADIENT_FLOOR, 1.0 / np.maximum(values, GRADIENT_FLOOR), 0.0)
+    return -velocity @ np.einsum("bji,bj,bkj->bik", right, kept, left)
 
 
 def _positive_semidefinite(k: np.ndarray) -> np.ndarray:
@@ -698,9 +950,28 @@ def _batches(group: BlockGroup, budget: int):
 
 def local_domains(fine: GridArrays, partition: Partition, border: int = 0, extend=(0, 0, 0),
                   budget: int = BATCH_BYTES, only=(None, None, None), permeability=None):
-    """Yield (batch, LocalDomain) for every block (extended by ``extend`` blocks per axis),
-    or for the blocks whose coarse indices per axis are in ``only``. ``permeability``:
-    ``fine.flow_permeability()`` when the caller already has it."""
+    """The local domains of every block, batch by batch.
+
+    Parameters
+    ----------
+    fine : GridArrays
+    partition : Partition
+    border : int
+        Fine cells of border ring around each block (clipped at the model edge).
+    extend : (int, int, int)
+        Blocks per axis each domain is extended by (the face problems: 1 along their axis).
+    budget : int
+        Bytes per batch.
+    only : tuple
+        Per axis, the coarse indices of the blocks wanted, or None for all.
+    permeability : tuple of three ndarray, optional
+        ``fine.flow_permeability()`` when the caller already has it.
+
+    Yields
+    ------
+    batch : BlockGroup
+    domain : LocalDomain
+    """
     k = fine.flow_permeability() if permeability is None else permeability
     dz = np.ascontiguousarray(fine.dz)  # made contiguous once, so that no batch's gather copies it
     for group in block_groups(partition, border, extend, only):
@@ -716,9 +987,26 @@ def flow_tensors(fine: GridArrays, partition: Partition, bc: str = "sealed", bor
                  progress=None, budget: int = BATCH_BYTES, only=(None, None, None)) -> FlowResult:
     """Flow-based effective permeability tensor of every coarse block (mD).
 
-    Inactive blocks (no active fine cell) get 0. ``progress`` is an optional callable
-    receiving the number of blocks finished in each batch; ``only`` restricts the solves
-    to the blocks with these coarse indices per axis (the others stay 0).
+    Inactive blocks (no active fine cell) get 0.
+
+    Parameters
+    ----------
+    fine : GridArrays
+    partition : Partition
+    bc : str
+        One of :data:`BOUNDARY_CONDITIONS`.
+    border : int
+        Fine cells of border ring.
+    progress : callable, optional
+        Receives the number of blocks finished in each batch.
+    budget : int
+        Bytes per batch.
+    only : tuple
+        Per axis, the coarse indices of the blocks solved, or None for all (the others stay 0).
+
+    Returns
+    -------
+    FlowResult
     """
     if bc not in BOUNDARY_CONDITIONS:
         raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")

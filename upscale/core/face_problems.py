@@ -51,9 +51,29 @@ def flow_transmissibility(cells: GridArrays, partition: Partition, border: int =
     cells of both blocks (plus the border ring), no-flow sides, unit pressure drop between
     its far ends; T = C Q / (p1 - p2) with p1, p2 the bulk-volume-weighted mean pressures
     of each block's connected fine cells. Exactly 0 where no fine path crosses.
-    ``only`` restricts the faces to those after the blocks with these coarse indices per
-    axis (the others stay 0). Returns (transmissibilities per axis in ``units``, residuals
-    per axis).
+
+    Parameters
+    ----------
+    cells : GridArrays
+    partition : Partition
+    border : int
+        Fine cells of border ring.
+    units : str
+        'metric' or 'field' (:func:`upscale.core.units.unit_system`).
+    progress : callable, optional
+        Receives the number of blocks finished in each batch.
+    budget : int
+        Bytes per batch.
+    only : tuple
+        Per axis, the coarse indices of the blocks whose following faces are wanted, or
+        None for all (the others stay 0).
+
+    Returns
+    -------
+    faces : list of three ndarray
+        Transmissibilities per axis, (NX-1, NY, NZ), (NX, NY-1, NZ), (NX, NY, NZ-1), in ``units``.
+    residuals : list of three ndarray
+        Relative residuals of the face problems, per axis.
     """
     faces, residuals, _ = _face_problems(cells, partition, border, units, progress, budget, only, sealed=False,
                                          permeability=cells.flow_permeability())
@@ -68,10 +88,21 @@ def sealed_and_face_flow(cells: GridArrays, partition: Partition, border: int = 
     Along each axis, block I's sealed domain is the leading part of the face problem
     between I and I+1 (the same cells up to I's far end, or its border ring), so both
     systems are solved in one kernel call that eliminates their common cells once
-    (:func:`upscale.local.solve_with_leading`); the same numbers as the two separate
-    calls to rounding. Blocks without a face after them, and face problems whose band
-    order does not start with the block, get their own sealed solve.
-    Returns (sealed FlowResult, face transmissibilities per axis, face residuals per axis).
+    (:func:`upscale.core.block_problems.solve_with_leading`); the same numbers as the two
+    separate calls to rounding. Blocks without a face after them, and face problems whose
+    band order does not start with the block, get their own sealed solve.
+
+    Parameters
+    ----------
+    cells, partition, border, units, progress, budget, only
+        As for :func:`flow_transmissibility`.
+
+    Returns
+    -------
+    flow : FlowResult
+        The sealed tensors (diagonal).
+    faces, residuals : list of three ndarray
+        As :func:`flow_transmissibility` returns them.
     """
     permeability = cells.flow_permeability()
     faces, residuals, (diagonal, residual, done) = _face_problems(cells, partition, border, units, progress,
@@ -82,13 +113,7 @@ def sealed_and_face_flow(cells: GridArrays, partition: Partition, border: int = 
     for axis in range(3):
         remaining = wanted & ~done[axis]
         if remaining.any():
-            hull = tuple(np.flatnonzero(remaining.any(axis=tuple(b for b in range(3) if b != a))) for a in range(3))
-            k, r = np.zeros(partition.shape), np.zeros(partition.shape)
-            for batch, domain in local_domains(cells, partition, border, budget=budget, only=hull,
-                                               permeability=permeability):
-                tensor, batch_residual, _ = solve_domains(domain, "sealed", directions=(axis,))
-                batch.scatter(k, tensor[:, axis, axis])
-                batch.scatter(r, batch_residual)
+            k, r = _own_sealed_solves(cells, partition, border, budget, permeability, axis, remaining)
             diagonal[axis] = np.where(remaining, k, diagonal[axis])
             residual[axis] = np.where(remaining, r, residual[axis])
         if progress is not None:
@@ -99,6 +124,18 @@ def sealed_and_face_flow(cells: GridArrays, partition: Partition, border: int = 
     tensor[partition.block_sum(cells.active) == 0] = 0.0
     flow = FlowResult(tensor=tensor, residual=np.maximum.reduce(residual), asymmetry=np.zeros(partition.shape))
     return flow, faces, residuals
+
+
+def _own_sealed_solves(cells, partition, border, budget, permeability, axis: int, remaining: np.ndarray):
+    """Sealed permeability and residual along ``axis`` of the blocks in the hull of
+    ``remaining`` (the others 0), each from its own solve."""
+    hull = tuple(np.flatnonzero(remaining.any(axis=tuple(b for b in range(3) if b != a))) for a in range(3))
+    k, r = np.zeros(partition.shape), np.zeros(partition.shape)
+    for batch, domain in local_domains(cells, partition, border, budget=budget, only=hull, permeability=permeability):
+        tensor, batch_residual, _ = solve_domains(domain, "sealed", directions=(axis,))
+        batch.scatter(k, tensor[:, axis, axis])
+        batch.scatter(r, batch_residual)
+    return k, r
 
 
 def _face_problems(cells: GridArrays, partition: Partition, border: int, units: str, progress, budget: int, only,
@@ -157,5 +194,16 @@ def _neighbour_region(batch, axis: int) -> tuple[slice, ...]:
 
 
 def multipliers(flow: np.ndarray, from_k: np.ndarray) -> np.ndarray:
-    """T_flow / T_from_k per face; 1 where T_from_k is 0 (the face stays closed)."""
+    """Transmissibility multipliers T_flow / T_from_k per face.
+
+    Parameters
+    ----------
+    flow, from_k : ndarray
+        Flow-based and from-permeability transmissibilities of the same faces.
+
+    Returns
+    -------
+    ndarray
+        1 where T_from_k is 0 (the face stays closed).
+    """
     return np.divide(flow, from_k, out=np.ones_like(from_k), where=from_k > 0)

@@ -19,8 +19,17 @@ AXES = ("x", "y", "z")
 class GridArrays:
     """A normalised field as plain numpy arrays, shapes (nx, ny, nz) unless noted.
 
-    dx (nx,), dy (ny,), dz: cell sizes in m; kx, ky, kz in mD (inactive cells 0);
-    porosity, ntg fractions; active bool.
+    Attributes
+    ----------
+    dx, dy : ndarray, (nx,), (ny,)
+        Cell sizes, m.
+    dz : ndarray
+        Cell thicknesses, m.
+    kx, ky, kz : ndarray
+        Permeability, mD (inactive cells 0).
+    porosity, ntg : ndarray
+        Fractions.
+    active : ndarray of bool
     """
 
     dx: np.ndarray
@@ -35,6 +44,7 @@ class GridArrays:
 
     @property
     def shape(self) -> tuple[int, int, int]:
+        """(nx, ny, nz)."""
         return self.kx.shape
 
     @property
@@ -48,19 +58,46 @@ class GridArrays:
         return self.porosity * self.ntg * self.bulk_volume * self.active
 
     def crop(self, cells: tuple[slice, slice, slice]) -> "GridArrays":
-        """The arrays of a box of cells (fine index slices per axis)."""
+        """The arrays of a box of cells.
+
+        Parameters
+        ----------
+        cells : tuple of three slices
+            Fine index slices per axis.
+
+        Returns
+        -------
+        GridArrays
+        """
         sx, sy, _ = cells
         three = {n: getattr(self, n)[cells] for n in ("dz", "kx", "ky", "kz", "porosity", "ntg", "active")}
         return GridArrays(dx=self.dx[sx], dy=self.dy[sy], **three)
 
     def flow_permeability(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """Permeability that carries flow, mD: kx*ntg, ky*ntg, kz; 0 in inactive cells."""
+        """Permeability that carries flow.
+
+        Returns
+        -------
+        (ndarray, ndarray, ndarray)
+            kx*ntg, ky*ntg, kz in mD; 0 in inactive cells.
+        """
         a = self.active
         return self.kx * self.ntg * a, self.ky * self.ntg * a, self.kz * a
 
 
 def axis_index(axis) -> int:
-    """0, 1, 2 from 0, 1, 2 or 'x', 'y', 'z'."""
+    """The axis number of an axis given by number or name.
+
+    Parameters
+    ----------
+    axis : int or str
+        0, 1, 2 or 'x', 'y', 'z'.
+
+    Returns
+    -------
+    int
+        0, 1 or 2; InputError for anything else.
+    """
     if isinstance(axis, str) and axis in AXES:
         return AXES.index(axis)
     if isinstance(axis, (int, np.integer)) and not isinstance(axis, bool) and 0 <= int(axis) < 3:

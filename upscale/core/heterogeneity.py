@@ -45,6 +45,7 @@ def _samples(values, weight) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _all_equal(values: np.ndarray) -> bool:
+    """Whether there are samples and all are equal."""
     return values.size > 0 and values.min() == values.max()
 
 
@@ -60,8 +61,18 @@ def weighted_percentile(values, weight, q):
     ``numpy.percentile(values, q, method="hazen")``. The definition depends only on the
     weighted distribution, so duplicating a sample equals doubling its weight.
 
-    ``weight`` may be None (all 1). Returns a float for scalar ``q``, else an array like
-    ``q``; NaN if no sample has positive weight.
+    Parameters
+    ----------
+    values : array_like
+    weight : array_like or None
+        Like ``values``; None means all 1.
+    q : float or array_like
+        Percent, 0..100.
+
+    Returns
+    -------
+    float or ndarray
+        A float for scalar ``q``, else an array like ``q``; NaN if no sample has positive weight.
     """
     q = np.asarray(q, dtype=float)
     if np.any(~np.isfinite(q)) or np.any((q < 0) | (q > 100)):
@@ -82,8 +93,18 @@ def coefficient_of_variation(k, weight=None) -> float:
     """Weighted coefficient of variation of ``k``: weighted std / weighted mean.
 
     The std is the weighted population std sqrt(sum w (k - mean)^2 / sum w) (no n - 1
-    correction, so that weights act as frequencies). Dimensionless. All equal -> 0;
-    no positive weight, or a zero mean of unequal samples -> NaN.
+    correction, so that weights act as frequencies).
+
+    Parameters
+    ----------
+    k : array_like
+    weight : array_like, optional
+
+    Returns
+    -------
+    float
+        Dimensionless. All equal -> 0; no positive weight, or a zero mean of unequal
+        samples -> NaN.
     """
     k, weight = _samples(k, weight)
     if k.size == 0:
@@ -103,8 +124,18 @@ def dykstra_parsons(k, weight=None) -> float:
 
     k50 is the weighted median and k84.1 the value exceeded by 84.1 % of the (weighted)
     samples, i.e. the 15.9th weighted percentile (:func:`weighted_percentile`). For lognormal
-    k, V = 1 - exp(-sigma_lnk). Dimensionless, 0 <= V <= 1 for k >= 0. All equal -> 0;
-    no positive weight, or a zero median of unequal samples -> NaN.
+    k, V = 1 - exp(-sigma_lnk).
+
+    Parameters
+    ----------
+    k : array_like
+    weight : array_like, optional
+
+    Returns
+    -------
+    float
+        Dimensionless, 0 <= V <= 1 for k >= 0. All equal -> 0; no positive weight, or a
+        zero median of unequal samples -> NaN.
     """
     k, weight = _samples(k, weight)
     if k.size == 0:
@@ -127,30 +158,23 @@ def lorenz(k, porosity, thickness=None) -> float:
     the coefficient is 2 (A - 0.5): 0 for a homogeneous set, approaching 1 when a vanishing
     part of the storage carries all the flow. Samples of zero thickness, and samples with
     neither flow nor storage capacity, are ignored; a sample with zero porosity and k > 0
-    comes first (infinite k / porosity). ``thickness`` None means all 1 (any unit).
+    comes first (infinite k / porosity).
 
-    Returns a value in [0, 1] (below 1 whenever every porosity is positive). All k / porosity
-    equal, or no flow capacity at all (all k = 0) -> 0; no sample of positive thickness, or
-    no storage capacity -> NaN.
+    Parameters
+    ----------
+    k, porosity : array_like
+        Same number of samples, >= 0.
+    thickness : array_like, optional
+        >= 0, any unit; None means all 1.
+
+    Returns
+    -------
+    float
+        In [0, 1] (below 1 whenever every porosity is positive). All k / porosity equal, or
+        no flow capacity at all (all k = 0) -> 0; no sample of positive thickness, or no
+        storage capacity -> NaN.
     """
-    k = np.ravel(np.asarray(k, dtype=float))
-    porosity = np.ravel(np.asarray(porosity, dtype=float))
-    if porosity.shape != k.shape:
-        raise ValueError(f"porosity has {porosity.size} samples, k has {k.size}")
-    if thickness is None:
-        thickness = np.ones(k.shape)
-    thickness = np.ravel(np.asarray(thickness, dtype=float))
-    if thickness.shape != k.shape:
-        raise ValueError(f"thickness has {thickness.size} samples, k has {k.size}")
-    if not np.all(np.isfinite(thickness)) or np.any(thickness < 0):
-        raise ValueError("thickness must be finite and >= 0")
-    keep = thickness > 0
-    k, porosity, thickness = k[keep], porosity[keep], thickness[keep]
-    if not (np.all(np.isfinite(k)) and np.all(np.isfinite(porosity))):
-        raise ValueError("k and porosity must be finite where the thickness is positive")
-    if np.any(k < 0) or np.any(porosity < 0):
-        raise ValueError("k and porosity must be >= 0")
-
+    k, porosity, thickness = _lorenz_samples(k, porosity, thickness)
     flow = k * thickness
     storage = porosity * thickness
     carries = (flow > 0) | (storage > 0)
@@ -172,3 +196,25 @@ def lorenz(k, porosity, thickness=None) -> float:
     area = np.sum(np.diff(storage_curve) * (flow_curve[1:] + flow_curve[:-1]) / 2)
     # Sorting makes the curve concave, so A >= 0.5 exactly; clip only rounding noise.
     return float(np.clip(2.0 * (area - 0.5), 0.0, 1.0))
+
+
+def _lorenz_samples(k, porosity, thickness) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Flattened k, porosity and thickness of the samples of positive thickness, checked (ValueError)."""
+    k = np.ravel(np.asarray(k, dtype=float))
+    porosity = np.ravel(np.asarray(porosity, dtype=float))
+    if porosity.shape != k.shape:
+        raise ValueError(f"porosity has {porosity.size} samples, k has {k.size}")
+    if thickness is None:
+        thickness = np.ones(k.shape)
+    thickness = np.ravel(np.asarray(thickness, dtype=float))
+    if thickness.shape != k.shape:
+        raise ValueError(f"thickness has {thickness.size} samples, k has {k.size}")
+    if not np.all(np.isfinite(thickness)) or np.any(thickness < 0):
+        raise ValueError("thickness must be finite and >= 0")
+    keep = thickness > 0
+    k, porosity, thickness = k[keep], porosity[keep], thickness[keep]
+    if not (np.all(np.isfinite(k)) and np.all(np.isfinite(porosity))):
+        raise ValueError("k and porosity must be finite where the thickness is positive")
+    if np.any(k < 0) or np.any(porosity < 0):
+        raise ValueError("k and porosity must be >= 0")
+    return k, porosity, thickness

@@ -43,6 +43,7 @@ OBJECTIVES = ("within_variance",)
 
 
 def _layer_sum(values: np.ndarray) -> np.ndarray:
+    """Sum over the cells of each layer, (nz,)."""
     return np.sum(values, axis=(0, 1))
 
 
@@ -56,37 +57,54 @@ def _ratio(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
 def layer_statistics(cells: GridArrays) -> dict:
     """Per-fine-layer statistics, each a float array of shape (nz,).
 
-    With ``b`` the cell bulk volume (m3), sums running over the cells of one layer:
-
-    ``bulk_volume``   m3: sum of b over active cells.
-    ``weight``        m3: sum of b over active cells with kh > 0 -- the weight of the layer in
-                      every ln kh statistic (0 for a layer with no such cell, e.g. all pinched).
-    ``thickness``     m: mean dz over active cells, area (dx*dy) weighted, i.e. active bulk
-                      volume / active area (0 for a layer with no active cell).
-    ``lnk_mean``      ln mD: bulk-weighted mean of ln kh over active cells with kh > 0.
-    ``lnk_var``       (ln mD)^2: bulk-weighted (population) variance of ln kh over the same cells.
-    ``kh_mean``       mD: bulk-weighted arithmetic mean of kh = kx*ntg over active cells.
-    ``kz_harmonic``   mD: bulk-weighted harmonic mean of kz over active cells (0 if any is 0).
-    ``porosity_mean`` 1: bulk-weighted mean of porosity*ntg over active cells.
-    ``capacity_x``    mD*m2: flow capacity along x, sum over the layer's cells of
-                      kx*ntg * dy*dz (cross-section area), averaged along x with dx weights
-                      (sum of kx*ntg*dy*dz*dx / sum dx); ``capacity_y`` likewise with ky, dx*dz, dy.
-    ``flow_share_x``  1: capacity_x / its sum over all layers (the layer's share of the flow
-                      along x in a layer-cake); ``flow_share_y`` likewise.
-
     Statistics of an empty set (no active cell, or weight 0 for the ln kh ones) are NaN,
     except sums and thickness, which are 0. Every statistic is built from per-layer sums
     (:func:`layer_sums`), so that a field read slab by slab, its sums joined by
     :func:`combine_sums`, gives the same result (:func:`statistics_from_sums`,
     :func:`upscale.checks.layering.field_layer_statistics`).
+
+    Parameters
+    ----------
+    cells : GridArrays
+
+    Returns
+    -------
+    dict
+        With ``b`` the cell bulk volume (m3), sums running over the cells of one layer:
+
+        ``bulk_volume``   m3: sum of b over active cells.
+        ``weight``        m3: sum of b over active cells with kh > 0 -- the weight of the layer in
+                          every ln kh statistic (0 for a layer with no such cell, e.g. all pinched).
+        ``thickness``     m: mean dz over active cells, area (dx*dy) weighted, i.e. active bulk
+                          volume / active area (0 for a layer with no active cell).
+        ``lnk_mean``      ln mD: bulk-weighted mean of ln kh over active cells with kh > 0.
+        ``lnk_var``       (ln mD)^2: bulk-weighted (population) variance of ln kh over the same cells.
+        ``kh_mean``       mD: bulk-weighted arithmetic mean of kh = kx*ntg over active cells.
+        ``kz_harmonic``   mD: bulk-weighted harmonic mean of kz over active cells (0 if any is 0).
+        ``porosity_mean`` 1: bulk-weighted mean of porosity*ntg over active cells.
+        ``capacity_x``    mD*m2: flow capacity along x, sum over the layer's cells of
+                          kx*ntg * dy*dz (cross-section area), averaged along x with dx weights
+                          (sum of kx*ntg*dy*dz*dx / sum dx); ``capacity_y`` likewise with ky, dx*dz, dy.
+        ``flow_share_x``  1: capacity_x / its sum over all layers (the layer's share of the flow
+                          along x in a layer-cake); ``flow_share_y`` likewise.
     """
     return statistics_from_sums(layer_sums(cells))
 
 
 def layer_sums(cells: GridArrays) -> dict:
-    """Per-layer sums of a box of cells (all columns of some x range), each (nz,), from
-    which :func:`_statistics` builds the statistics; ``lnk_m2`` is the weighted sum of
-    squared deviations of ln kh from ``lnk_mean`` (the mean of these cells)."""
+    """Per-layer sums of a box of cells, from which :func:`statistics_from_sums` builds the statistics.
+
+    Parameters
+    ----------
+    cells : GridArrays
+        All columns of some x range.
+
+    Returns
+    -------
+    dict
+        Each (nz,); ``lnk_m2`` is the weighted sum of squared deviations of ln kh from
+        ``lnk_mean`` (the mean of these cells).
+    """
     active = np.asarray(cells.active, dtype=bool)
     bulk = cells.bulk_volume * active
     kh_x, kh_y, kz = cells.flow_permeability()
@@ -112,8 +130,20 @@ def layer_sums(cells: GridArrays) -> dict:
 
 
 def combine_sums(a: dict, b: dict) -> dict:
-    """Sums of two boxes of whole columns side by side along x (Chan, Golub & LeVeque 1983
-    for the weighted mean and squared deviations of ln kh)."""
+    """Sums of two boxes of whole columns side by side along x.
+
+    Chan, Golub & LeVeque 1983 for the weighted mean and squared deviations of ln kh.
+
+    Parameters
+    ----------
+    a, b : dict
+        :func:`layer_sums` of the two boxes, ``a`` the one at lower x.
+
+    Returns
+    -------
+    dict
+        The sums of both boxes together.
+    """
     out = {key: a[key] + b[key] for key in a if key not in ("lnk_mean", "lnk_m2", "length_y")}
     weight = out["weight"]
     share = np.divide(b["weight"], weight, out=np.zeros_like(weight), where=weight > 0)
@@ -125,7 +155,18 @@ def combine_sums(a: dict, b: dict) -> dict:
 
 
 def statistics_from_sums(sums: dict) -> dict:
-    """The statistics of :func:`layer_statistics` from per-layer sums."""
+    """The statistics of :func:`layer_statistics` from per-layer sums.
+
+    Parameters
+    ----------
+    sums : dict
+        From :func:`layer_sums` (or :func:`combine_sums`).
+
+    Returns
+    -------
+    dict
+        As :func:`layer_statistics`.
+    """
     bulk_volume, weight = sums["bulk_volume"], sums["weight"]
     kz_harmonic = np.where(sums["kz_blocked"] > 0, 0.0, _ratio(bulk_volume, sums["kz_inverse"]))
     kz_harmonic[bulk_volume <= 0] = np.nan
@@ -192,6 +233,7 @@ def _group_cost(p0, p1, p2, start, stop):
 
 
 def _check_count(n_groups, limit: int, what: str) -> int:
+    """``n_groups`` as an int, checked to be a whole number from 1 to ``limit`` (InputError)."""
     if isinstance(n_groups, bool) or not isinstance(n_groups, numbers.Integral):
         raise InputError(f"number of groups must be a whole number, got {n_groups!r}")
     n_groups = int(n_groups)
@@ -203,6 +245,23 @@ def _check_count(n_groups, limit: int, what: str) -> int:
 
 
 def check_edges(edges, nz: int) -> np.ndarray:
+    """Layer edges, checked.
+
+    Parameters
+    ----------
+    edges : sequence of int
+        A grouping of ``nz`` fine layers (module notes).
+    nz : int
+
+    Returns
+    -------
+    ndarray of int
+
+    Raises
+    ------
+    InputError
+        Unless ``edges`` are whole numbers increasing strictly from 0 to ``nz``.
+    """
     try:
         array = np.asarray(edges)
     except Exception:  # ragged input and the like
@@ -223,53 +282,68 @@ def check_edges(edges, nz: int) -> np.ndarray:
 def judge_grouping(stats: dict, edges) -> dict:
     """How well the grouping ``edges`` of the fine layers keeps the layering.
 
-    ``stats`` from :func:`layer_statistics`. Returns a dict; per-group entries are float
-    arrays of shape (G,):
+    Parameters
+    ----------
+    stats : dict
+        From :func:`layer_statistics`.
+    edges : sequence of int
+        The grouping (module notes).
 
-    ``edges``             the checked edges (list of int); ``n_groups`` G.
-    ``variance_total``    (ln mD)^2: bulk-weighted variance of ln kh over all active cells
-                          with kh > 0.
-    ``variance_kept``     1: share of that variance lying BETWEEN groups,
-                          1 - (within-group sum) / (total sum). 1 when each group is
-                          uniform in ln kh, 0 for a single group; 1.0 if the total variance is 0
-                          (nothing to lose).
-    ``variance_ceiling``  1: the best any grouping can reach, the variance_kept of one layer per
-                          group (the lateral variance inside fine layers cannot be kept).
-    ``within_sum``        (ln mD)^2 * m3: sum over groups of sum of b*(ln kh - group mean)^2,
-                          the objective :func:`optimal_grouping` minimises.
-    ``n_layers``          fine layers per group; ``thickness`` m: sum of the layer thicknesses.
-    ``group_weight``      m3: bulk volume carrying ln kh; ``lnk_mean`` ln mD: group mean.
-    ``within_group_std``  ln mD: bulk-weighted standard deviation of ln kh inside the group
-                          (NaN for a group with no weight).
-    ``worst_group``, ``worst_std``: index and within_group_std of the group with the largest
-                          within_group_std (first if tied; -1 and NaN if none is defined).
-    ``kz_ratio``          1: vertical averaging error. With the layer values kz_l =
-                          ``kz_harmonic`` and h_l = ``thickness``, the series (harmonic,
-                          thickness-weighted) mean sum h / sum(h/kz_l) -- the kz the stacked
-                          fine layers really give -- divided by the arithmetic mean
-                          sum(h kz_l) / sum h that a naive average would report. 1 when all
-                          layers of the group have the same kz, towards 0 when a tight layer
-                          is hidden in the group; NaN if the arithmetic mean is 0 or no layer
-                          has thickness.
-    ``front_speedup``     1: how much earlier the fastest fine layer of the group breaks
-                          through than its coarse layer predicts, for flow along the layers in a
-                          layer-cake: max over layers of (kh_l / phi_l) divided by the group's
-                          (kh / phi), with kh and phi = porosity*ntg bulk-weighted means (speed
-                          of a front is proportional to k / phi at equal pressure gradient).
-                          >= 1 when all layers have pore space; NaN if the group has no flow.
-    ``flow_share_x``, ``flow_share_y``: 1, the group's share of the layer-cake flow capacity
-                          along x and y; exact under arithmetic averaging along the layers, so
-                          shown for reference and not as an error.
+    Returns
+    -------
+    dict
+        Per-group entries are float arrays of shape (G,):
+
+        ``edges``             the checked edges (list of int); ``n_groups`` G.
+        ``variance_total``    (ln mD)^2: bulk-weighted variance of ln kh over all active cells
+                              with kh > 0.
+        ``variance_kept``     1: share of that variance lying BETWEEN groups,
+                              1 - (within-group sum) / (total sum). 1 when each group is
+                              uniform in ln kh, 0 for a single group; 1.0 if the total variance
+                              is 0 (nothing to lose).
+        ``variance_ceiling``  1: the best any grouping can reach, the variance_kept of one layer
+                              per group (the lateral variance inside fine layers cannot be kept).
+        ``within_sum``        (ln mD)^2 * m3: sum over groups of sum of b*(ln kh - group mean)^2,
+                              the objective :func:`optimal_grouping` minimises.
+        ``n_layers``          fine layers per group; ``thickness`` m: sum of the layer thicknesses.
+        ``group_weight``      m3: bulk volume carrying ln kh; ``lnk_mean`` ln mD: group mean.
+        ``within_group_std``  ln mD: bulk-weighted standard deviation of ln kh inside the group
+                              (NaN for a group with no weight).
+        ``worst_group``, ``worst_std``: index and within_group_std of the group with the largest
+                              within_group_std (first if tied; -1 and NaN if none is defined).
+        ``kz_ratio``          1: vertical averaging error. With the layer values kz_l = ``kz_harmonic`` and
+                              h_l = ``thickness``, the series (harmonic, thickness-weighted) mean
+                              sum h / sum(h/kz_l) -- the kz the stacked fine layers really give -- divided by
+                              the arithmetic mean sum(h kz_l) / sum h that a naive average would report. 1 when
+                              all layers of the group have the same kz, towards 0 when a tight layer is hidden
+                              in the group; NaN if the arithmetic mean is 0 or no layer has thickness.
+        ``front_speedup``     1: how much earlier the fastest fine layer of the group breaks through than its
+                              coarse layer predicts, for flow along the layers in a layer-cake: max over layers
+                              of (kh_l / phi_l) divided by the group's (kh / phi), with kh and phi =
+                              porosity*ntg bulk-weighted means (speed of a front is proportional to k / phi at
+                              equal pressure gradient). >= 1 when all layers have pore space; NaN if the group
+                              has no flow.
+        ``flow_share_x``, ``flow_share_y``: 1, the group's share of the layer-cake flow capacity along x and
+                              y; exact under arithmetic averaging along the layers, so shown for reference and
+                              not as an error.
     """
     w, m, v = _layer_moments(stats, STAT_KEYS)
-    nz = w.size
-    edges = check_edges(edges, nz)
+    edges = check_edges(edges, w.size)
     start, stop = edges[:-1], edges[1:]
+    # ln kh variance between and inside the groups from prefix sums, then the per-group contrasts
     p0, p1, p2, _, centre = _prefix_sums(w, m, v)
+    within = _group_cost(p0, p1, p2, start, stop)  # sum of squares inside each group
+    total = float(_group_cost(p0, p1, p2, 0, w.size))
+    kz_ratio, speedup = _group_contrasts(stats, start, stop)
+    return {"edges": edges.tolist(), "n_groups": int(start.size), **_variance_shares(w, v, within, total, centre),
+            "n_layers": (stop - start).astype(int),
+            "thickness": np.add.reduceat(np.asarray(stats["thickness"], dtype=float), start),
+            **_group_spread(p0[stop] - p0[start], p1[stop] - p1[start], within, centre),
+            "kz_ratio": kz_ratio, "front_speedup": speedup, **_flow_shares(stats, start)}
 
-    group_weight = p0[stop] - p0[start]
-    within = _group_cost(p0, p1, p2, start, stop)
-    total = float(_group_cost(p0, p1, p2, 0, nz))
+
+def _variance_shares(w, v, within, total: float, centre: float) -> dict:
+    """'variance_total', 'variance_kept', 'variance_ceiling' and 'within_sum' of :func:`judge_grouping`."""
     layers_within = float(np.sum(w * v))
     # Rounding leaves a few ulp of "variance" in a uniform field: below this it counts as none.
     negligible = float(w.sum()) * (1e-12 * max(1.0, abs(centre))) ** 2
@@ -278,15 +352,26 @@ def judge_grouping(stats: dict, edges) -> dict:
         ceiling = 1.0 - min(layers_within / total, 1.0)
     else:
         kept, ceiling = 1.0, 1.0
-    kept = min(max(kept, 0.0), 1.0)
+    return {"variance_total": total / float(w.sum()) if w.sum() > 0 else math.nan,
+            "variance_kept": min(max(kept, 0.0), 1.0), "variance_ceiling": ceiling, "within_sum": float(within.sum())}
+
+
+def _group_spread(group_weight, group_first, within, centre: float) -> dict:
+    """'group_weight', 'lnk_mean', 'within_group_std', 'worst_group' and 'worst_std' of
+    :func:`judge_grouping`, from each group's weight, centred first moment and sum of squares."""
     within_std = np.sqrt(_ratio(within, group_weight))
-    lnk_mean = _ratio(p1[stop] - p1[start], group_weight) + centre
+    lnk_mean = _ratio(group_first, group_weight) + centre
     if np.any(np.isfinite(within_std)):
         worst = int(np.nanargmax(within_std))
         worst_std = float(within_std[worst])
     else:
         worst, worst_std = -1, math.nan
+    return {"group_weight": group_weight, "lnk_mean": lnk_mean, "within_group_std": within_std,
+            "worst_group": worst, "worst_std": worst_std}
 
+
+def _group_contrasts(stats: dict, start, stop) -> tuple[np.ndarray, np.ndarray]:
+    """'kz_ratio' and 'front_speedup' of :func:`judge_grouping` (G,) each."""
     thickness = np.asarray(stats["thickness"], dtype=float)
     kz = np.asarray(stats["kz_harmonic"], dtype=float)
     bulk = np.asarray(stats["bulk_volume"], dtype=float)
@@ -298,31 +383,37 @@ def judge_grouping(stats: dict, edges) -> dict:
     blocked = present & (kz0 <= 0)
     inverse = np.where(present & ~blocked, h / np.where(kz0 > 0, kz0, 1.0), 0.0)
     speed = np.where((bulk > 0) & (phi > 0), kh / np.where(phi > 0, phi, 1.0), -np.inf)
-
     kz_ratio, speedup = np.full(start.size, np.nan), np.full(start.size, np.nan)
     for g, (a, b) in enumerate(zip(start, stop)):  # loops over groups only; each step is O(layers)
-        height = h[a:b].sum()
-        arithmetic = np.sum(h[a:b] * kz0[a:b]) / height if height > 0 else 0.0
-        if arithmetic > 0:
-            harmonic = 0.0 if blocked[a:b].any() else height / inverse[a:b].sum()
-            kz_ratio[g] = harmonic / arithmetic
-        group_bulk = bulk[a:b].sum()
-        group_speed = (np.sum(bulk[a:b] * kh[a:b]) / np.sum(bulk[a:b] * phi[a:b])
-                       if group_bulk > 0 and np.sum(bulk[a:b] * phi[a:b]) > 0 else 0.0)
-        if group_speed > 0 and np.isfinite(speed[a:b]).any():
-            speedup[g] = np.max(speed[a:b]) / group_speed
+        kz_ratio[g] = _kz_ratio(h[a:b], kz0[a:b], blocked[a:b], inverse[a:b])
+        speedup[g] = _front_speedup(bulk[a:b], kh[a:b], phi[a:b], speed[a:b])
+    return kz_ratio, speedup
 
-    shares = {}
-    for axis in ("x", "y"):
-        share = np.nan_to_num(np.asarray(stats[f"flow_share_{axis}"], dtype=float))
-        shares[f"flow_share_{axis}"] = np.add.reduceat(share, start)
-    return {"edges": edges.tolist(), "n_groups": int(start.size),
-            "variance_total": total / float(w.sum()) if w.sum() > 0 else math.nan,
-            "variance_kept": kept, "variance_ceiling": ceiling, "within_sum": float(within.sum()),
-            "n_layers": (stop - start).astype(int), "thickness": np.add.reduceat(thickness, start),
-            "group_weight": group_weight, "lnk_mean": lnk_mean, "within_group_std": within_std,
-            "worst_group": worst, "worst_std": worst_std, "kz_ratio": kz_ratio,
-            "front_speedup": speedup, **shares}
+
+def _flow_shares(stats: dict, start) -> dict:
+    """'flow_share_x' and 'flow_share_y' of :func:`judge_grouping`: the layers' shares summed per group."""
+    return {f"flow_share_{axis}": np.add.reduceat(np.nan_to_num(np.asarray(stats[f"flow_share_{axis}"], dtype=float)),
+                                                  start) for axis in ("x", "y")}
+
+
+def _kz_ratio(h, kz, blocked, inverse) -> float:
+    """Series over arithmetic mean kz of one group's layers (NaN without an arithmetic mean)."""
+    height = h.sum()
+    arithmetic = np.sum(h * kz) / height if height > 0 else 0.0
+    if not arithmetic > 0:
+        return math.nan
+    harmonic = 0.0 if blocked.any() else height / inverse.sum()
+    return harmonic / arithmetic
+
+
+def _front_speedup(bulk, kh, phi, speed) -> float:
+    """The fastest layer's k / phi over the group's (NaN if the group has no flow)."""
+    group_bulk = bulk.sum()
+    group_speed = (np.sum(bulk * kh) / np.sum(bulk * phi)
+                   if group_bulk > 0 and np.sum(bulk * phi) > 0 else 0.0)
+    if group_speed > 0 and np.isfinite(speed).any():
+        return np.max(speed) / group_speed
+    return math.nan
 
 
 def optimal_grouping(stats: dict, n_groups: int, objective: str = "within_variance") -> list[int]:
@@ -342,9 +433,23 @@ def optimal_grouping(stats: dict, n_groups: int, objective: str = "within_varian
     cost nothing and join a neighbouring group; every group holds at least one layer of
     positive weight. Ties go to the grouping whose boundaries lie highest (smallest index).
 
-    Returns the edges [0, ..., nz] (list of int). Raises :class:`InputError` if n_groups < 1,
-    n_groups > nz, n_groups > the number of layers of positive weight, or for an unknown
-    objective.
+    Parameters
+    ----------
+    stats : dict
+        From :func:`layer_statistics` (:data:`OPTIMAL_KEYS` suffice).
+    n_groups : int
+    objective : str
+
+    Returns
+    -------
+    list of int
+        The edges [0, ..., nz].
+
+    Raises
+    ------
+    InputError
+        If n_groups < 1, n_groups > nz, n_groups > the number of layers of positive weight,
+        or for an unknown objective.
     """
     if objective not in OBJECTIVES:
         raise InputError(f"unknown grouping objective '{objective}'; use one of {', '.join(OBJECTIVES)}")
@@ -353,11 +458,18 @@ def optimal_grouping(stats: dict, n_groups: int, objective: str = "within_varian
     _check_count(n_groups, nz, "fine layers")
     n_groups = _check_count(n_groups, int(np.count_nonzero(w > 0)), "fine layers holding ln kh (weight > 0)")
     p0, p1, p2, count, _ = _prefix_sums(w, m, v)
-
     index = np.arange(nz + 1)
     start, stop = index[:, None], index[None, :]
     cost = _group_cost(p0, p1, p2, start, stop)  # cost[i, j] of the group [i, j)
     cost[(count[stop] - count[start]) < 1] = np.inf  # empty or weightless groups are not allowed
+    return _cheapest_edges(cost, n_groups)
+
+
+def _cheapest_edges(cost: np.ndarray, n_groups: int) -> list[int]:
+    """Edges of the ``n_groups`` groups of least total cost, given cost[i, j] of a group
+    [i, j) (dynamic programme; ties to the smallest boundaries)."""
+    nz = cost.shape[0] - 1
+    index = np.arange(nz + 1)
     best = np.full(nz + 1, np.inf)
     best[0] = 0.0  # zero groups cover zero layers
     choice = np.zeros((n_groups + 1, nz + 1), dtype=int)
@@ -372,8 +484,22 @@ def optimal_grouping(stats: dict, n_groups: int, objective: str = "within_varian
 
 
 def uniform_grouping(nz: int, n_groups: int) -> list[int]:
-    """Edges of ``n_groups`` groups of consecutive layers as even as possible (sizes differ by
-    at most one, larger groups last): edges[g] = floor(g * nz / n_groups)."""
+    """Edges of ``n_groups`` groups of consecutive layers as even as possible.
+
+    Sizes differ by at most one, larger groups last: edges[g] = floor(g * nz / n_groups).
+
+    Parameters
+    ----------
+    nz : int
+        Number of fine layers, >= 1.
+    n_groups : int
+        From 1 to nz.
+
+    Returns
+    -------
+    list of int
+        The edges [0, ..., nz]; InputError for bad counts.
+    """
     if isinstance(nz, bool) or not isinstance(nz, numbers.Integral) or nz < 1:
         raise InputError(f"number of fine layers must be a whole number >= 1, got {nz!r}")
     n_groups = _check_count(n_groups, int(nz), "fine layers")
@@ -381,11 +507,21 @@ def uniform_grouping(nz: int, n_groups: int) -> list[int]:
 
 
 def compare_groupings(cells, n_groups: int, edges=None) -> dict:
-    """Judge the optimal and the uniform grouping into ``n_groups`` (and ``edges`` if given)
-    of a field (GridArrays) or of its statistics (the dict :func:`layer_statistics` returns).
+    """Judge the optimal and the uniform grouping into ``n_groups`` (and ``edges`` if given).
 
-    Returns ``{"optimal": judge, "uniform": judge[, "given": judge]}`` with the dicts of
-    :func:`judge_grouping`; ``edges`` may have any number of groups.
+    Parameters
+    ----------
+    cells : GridArrays or dict
+        A field, or its statistics (the dict :func:`layer_statistics` returns).
+    n_groups : int
+    edges : sequence of int, optional
+        A grouping with any number of groups.
+
+    Returns
+    -------
+    dict
+        ``{"optimal": judge, "uniform": judge[, "given": judge]}`` with the dicts of
+        :func:`judge_grouping`.
     """
     stats = cells if isinstance(cells, dict) else layer_statistics(cells)
     nz = stats["weight"].size

@@ -6,16 +6,14 @@ a forward sweep on the way down, the exact (pseudo-)inverse on the coarsest leve
 reverse sweep on the way up, so the preconditioner is symmetric positive definite as
 conjugate gradients needs. The cycle is our own rather than pyamg's ``aspreconditioner``
 because that one computes two extra residual norms per application and keeps the coarse
-operators in block-sparse form: measured on the 1.12 M-cell benchmark field, 0.10 s instead
-of 0.22 s per application, for the same iteration count.
+operators in block-sparse form.
 
 On the finest level the sweep is line Gauss-Seidel: the unknowns are cut into lines, maximal
 runs of consecutive rows coupled to the next row (with cells in C order, z fastest, these are
 the grid's vertical columns, broken where a face is closed), and each line is solved exactly
 (tridiagonal, Thomas algorithm) with the rest of the row moved to the right-hand side. Thin
 layers couple far more strongly vertically than laterally, and cemented streaks cut that
-coupling; point smoothing handles neither well (measured on the demo field: 391 CG iterations
-with point Gauss-Seidel, 159 with exact column solves). Coarser levels use point Gauss-Seidel.
+coupling; point smoothing handles neither well. Coarser levels use point Gauss-Seidel.
 """
 
 from __future__ import annotations
@@ -31,7 +29,13 @@ SETUP_SEED = 20261202
 
 
 class VCycle(spla.LinearOperator):
-    """One V-cycle of a smoothed-aggregation hierarchy of the SPD matrix ``matrix`` (CSR)."""
+    """One V-cycle of a smoothed-aggregation hierarchy, as a preconditioner (``M @ b``).
+
+    Parameters
+    ----------
+    matrix : sparse matrix, (n, n)
+        Symmetric positive definite (CSR).
+    """
 
     def __init__(self, matrix):
         import pyamg  # imported here: only the large models need it
@@ -53,12 +57,15 @@ class VCycle(spla.LinearOperator):
         super().__init__(dtype=np.float64, shape=self.operators[0].shape)
 
     def _matvec(self, b):
+        """One V-cycle from x = 0 for ``b``."""
         return self._cycle(0, np.asarray(b, dtype=np.float64).ravel())
 
     def _rmatvec(self, b):
+        """The same: the cycle is symmetric."""
         return self._matvec(b)  # symmetric
 
     def _cycle(self, level: int, b: np.ndarray) -> np.ndarray:
+        """The V-cycle's approximate solution on ``level`` (exact on the coarsest)."""
         if level == len(self.operators) - 1:
             return self.coarsest @ b
         A = self.operators[level]
@@ -69,6 +76,7 @@ class VCycle(spla.LinearOperator):
         return x
 
     def _smooth(self, level: int, x: np.ndarray, b: np.ndarray, forward: bool) -> None:
+        """One sweep in place on ``level``: line Gauss-Seidel on the finest, point Gauss-Seidel below."""
         A = self.operators[level]
         if level == 0:
             self.line_smoother.sweep(x, b, forward)
@@ -77,9 +85,22 @@ class VCycle(spla.LinearOperator):
 
 
 class LineSmoother:
-    """Line Gauss-Seidel for a CSR matrix (see the module notes), set up once: the lines,
-    the matrix without the couplings inside each line, and each line's tridiagonal
-    factorisation (Thomas algorithm: elimination factors, upper band, inverse pivots)."""
+    """Line Gauss-Seidel for a CSR matrix (see the module notes), set up once.
+
+    Parameters
+    ----------
+    A : sparse matrix, (n, n)
+
+    Attributes
+    ----------
+    starts : ndarray of int64
+        First row of each line, and n.
+    rest : scipy.sparse.csr_matrix
+        The matrix without the couplings inside each line (nor the diagonal).
+    factor, upper, inverse_pivot : ndarray, (n,)
+        Each line's tridiagonal factorisation (Thomas algorithm: elimination factors,
+        upper band, inverse pivots).
+    """
 
     def __init__(self, A: sp.csr_matrix):
         A = sp.csr_matrix(A)
@@ -89,9 +110,8 @@ class LineSmoother:
         coupled = (A.data != 0) & (cols != rows)
         new_line = np.ones(n, dtype=bool)
         new_line[cols[coupled & (cols == rows + 1)]] = False  # row i + 1 continues row i's line
-        # A line must hold no coupling but its tridiagonal one: where two rows of a line are
-        # coupled further apart, start a new line at the later one. Splitting only refines
-        # the lines, so one pass separates every such pair.
+        # A line holds no coupling but its tridiagonal one: split at the later row of any pair
+        # coupled further apart (splitting only refines, so one pass separates every pair).
         line = np.cumsum(new_line) - 1
         far = coupled & (np.abs(cols - rows) > 1) & (line[cols] == line[rows])
         new_line[np.maximum(rows[far], cols[far])] = True
@@ -111,8 +131,17 @@ class LineSmoother:
         self.rest.eliminate_zeros()
 
     def sweep(self, x: np.ndarray, b: np.ndarray, forward: bool) -> None:
-        """One sweep in place, lines in order (``forward``) or in reverse; the two are each
-        other's adjoint, which keeps the V-cycle symmetric."""
+        """One sweep in place, lines in order (``forward``) or in reverse.
+
+        The two are each other's adjoint, which keeps the V-cycle symmetric.
+
+        Parameters
+        ----------
+        x : ndarray, (n,)
+            The iterate, updated in place.
+        b : ndarray, (n,)
+        forward : bool
+        """
         R = self.rest
         with first_call(_line_sweep):
             _line_sweep(R.indptr, R.indices, R.data, self.factor, self.upper, self.inverse_pivot,
@@ -137,6 +166,8 @@ def _thomas_factors(lower, diagonal, upper, starts):
 
 @njit(cache=True)
 def _line_sweep(indptr, indices, data, factor, upper, inverse_pivot, starts, x, b, forward):
+    """One line Gauss-Seidel sweep in place: each line solved exactly with the rest of its rows
+    (the CSR matrix indptr, indices, data) on the right-hand side."""
     lines = starts.size - 1
     for step in range(lines):
         line = step if forward else lines - 1 - step

@@ -95,7 +95,7 @@ def _boundary_cells(shape, axis: int):
 
 
 def cell_status(face_t, boundary_t, axis) -> np.ndarray:
-    """Status of each cell, shape (nx, ny, nz): which cells the pressure system solves.
+    """Status of each cell: which cells the pressure system solves.
 
     Cells are grouped into connected components through faces with T > 0
     (``scipy.sparse.csgraph.connected_components``). A component connected to both
@@ -103,6 +103,15 @@ def cell_status(face_t, boundary_t, axis) -> np.ndarray:
     exact steady solution p = p_low (p_high) and is ``AT_LOW`` (``AT_HIGH``); one connected
     to neither (an isolated pocket, or a cell with no connection at all) has no defined
     pressure and is ``ISOLATED``.
+
+    Parameters
+    ----------
+    face_t, boundary_t, axis
+        As for :func:`assemble_pressure_system`.
+
+    Returns
+    -------
+    ndarray of int8, (nx, ny, nz)
     """
     axis = axis_index(axis)
     shape, faces, t_low, t_high = _check_faces(face_t, axis, boundary_t)
@@ -124,19 +133,35 @@ def cell_status(face_t, boundary_t, axis) -> np.ndarray:
 
 def assemble_pressure_system(face_t, boundary_t, axis, p_low: float = 1.0, p_high: float = 0.0,
                              return_status: bool = False):
-    """Two-point flux pressure system for flow along ``axis``; returns CSR ``A`` and ``b``.
+    """Two-point flux pressure system for flow along ``axis``.
 
-    face_t: interior-face transmissibilities per axis, shapes (nx-1, ny, nz), (nx, ny-1, nz),
-    (nx, ny, nz-1); boundary_t: (t_low, t_high), the half-cell transmissibilities of the
-    cells on the two faces normal to ``axis`` (shape of that face, with or without the
-    length-1 axis). Row i: sum_j T_ij (p_i - p_j) + T_b,i (p_i - p_b) = 0, so a
-    constant-pressure face adds T_b to the diagonal and T_b p_b to ``b``; sealed sides add
-    nothing. Unknowns are the cells in C order (``np.ravel_multi_index`` on (nx, ny, nz)).
+    Row i: sum_j T_ij (p_i - p_j) + T_b,i (p_i - p_b) = 0, so a constant-pressure face adds
+    T_b to the diagonal and T_b p_b to ``b``; sealed sides add nothing. Unknowns are the
+    cells in C order (``np.ravel_multi_index`` on (nx, ny, nz)). Cells that are not
+    ``SOLVED`` (see :func:`cell_status`) get an identity row: components touching only one
+    constant-pressure face are pinned to that face's pressure (their exact solution),
+    isolated ones to 0. The matrix is therefore symmetric positive definite and non-singular.
 
-    Cells that are not ``SOLVED`` (see :func:`cell_status`) get an identity row: components
-    touching only one constant-pressure face are pinned to that face's pressure (their exact
-    solution), isolated ones to 0. The matrix is therefore symmetric positive definite and
-    non-singular. With ``return_status`` the status array is returned as a third item.
+    Parameters
+    ----------
+    face_t : sequence of three arrays
+        Interior-face transmissibilities per axis, shapes (nx-1, ny, nz), (nx, ny-1, nz),
+        (nx, ny, nz-1).
+    boundary_t : (array_like, array_like)
+        (t_low, t_high), the half-cell transmissibilities of the cells on the two faces
+        normal to ``axis`` (shape of that face, with or without the length-1 axis).
+    axis : int or str
+    p_low, p_high : float
+        The pressures of the two faces.
+    return_status : bool
+        Also return the status array.
+
+    Returns
+    -------
+    A : scipy.sparse.csr_matrix, (n, n)
+    b : ndarray, (n,)
+    status : ndarray, (nx, ny, nz)
+        With ``return_status`` only.
     """
     axis = axis_index(axis)
     shape, faces, t_low, t_high = _check_faces(face_t, axis, boundary_t)
@@ -147,32 +172,35 @@ def assemble_pressure_system(face_t, boundary_t, axis, p_low: float = 1.0, p_hig
     # Faces never join different components, so checking one side is enough.
     inner = solved[first]
     first, second, value = first[inner], second[inner], value[inner]
-
-    low_cells, high_cells = _boundary_cells(shape, axis)
+    low_cells, high_cells = (cells.ravel() for cells in _boundary_cells(shape, axis))
     diagonal = np.zeros(n)  # float even when no face is left (bincount would give int)
-    diagonal += np.bincount(first, weights=value, minlength=n)
-    diagonal += np.bincount(second, weights=value, minlength=n)
-    diagonal += np.bincount(low_cells.ravel(), weights=t_low.ravel(), minlength=n)
-    diagonal += np.bincount(high_cells.ravel(), weights=t_high.ravel(), minlength=n)
-    rhs = np.zeros(n)
-    rhs += (np.bincount(low_cells.ravel(), weights=t_low.ravel() * p_low, minlength=n)
-           + np.bincount(high_cells.ravel(), weights=t_high.ravel() * p_high, minlength=n))
+    for cells, weights in ((first, value), (second, value), (low_cells, t_low.ravel()), (high_cells, t_high.ravel())):
+        diagonal += np.bincount(cells, weights=weights, minlength=n)
     diagonal[~solved] = 1.0
-    rhs[status == AT_LOW] = p_low
-    rhs[status == AT_HIGH] = p_high
-    rhs[status == ISOLATED] = 0.0
-
+    rhs = _right_hand_side(status, low_cells, high_cells, t_low.ravel(), t_high.ravel(), p_low, p_high)
     cells = np.arange(n)
-    rows = np.concatenate([cells, first, second])
-    cols = np.concatenate([cells, second, first])
-    data = np.concatenate([diagonal, -value, -value])
-    matrix = sp.csr_matrix((data, (rows, cols)), shape=(n, n))
+    matrix = sp.csr_matrix((np.concatenate([diagonal, -value, -value]),
+                            (np.concatenate([cells, first, second]), np.concatenate([cells, second, first]))),
+                           shape=(n, n))
     if return_status:
         return matrix, rhs, status.reshape(shape)
     return matrix, rhs
 
 
+def _right_hand_side(status, low_cells, high_cells, t_low, t_high, p_low: float, p_high: float) -> np.ndarray:
+    """T_b p_b on the cells of the constant-pressure faces; a pinned cell's own pressure."""
+    n = status.size
+    rhs = np.zeros(n)
+    rhs += (np.bincount(low_cells, weights=t_low * p_low, minlength=n)
+            + np.bincount(high_cells, weights=t_high * p_high, minlength=n))
+    rhs[status == AT_LOW] = p_low
+    rhs[status == AT_HIGH] = p_high
+    rhs[status == ISOLATED] = 0.0
+    return rhs
+
+
 def _relative_residual(A, b, p) -> float:
+    """||b - A p|| / ||b|| (0 if both are 0, inf if only b is)."""
     norm_b = np.linalg.norm(b)
     r = np.linalg.norm(b - A @ p)
     if norm_b == 0.0:
@@ -181,20 +209,51 @@ def _relative_residual(A, b, p) -> float:
 
 
 def solve_pressure(A, b, tolerance: float = 1e-10, direct_limit: int = DIRECT_LIMIT):
-    """Solve the symmetric positive definite system ``A p = b``; returns ``(p, info)``.
+    """Solve the symmetric positive definite system ``A p = b``.
 
     Rows with only a diagonal entry (pinned cells) are solved directly and removed. The rest
     is scaled symmetrically to unit diagonal, D^-1/2 A D^-1/2, which evens out permeability
     contrasts, then solved by sparse LU (SuperLU) when it has at most ``direct_limit``
     unknowns, otherwise by conjugate gradients preconditioned with a smoothed-aggregation
-    V-cycle (:class:`upscale.multigrid.VCycle`). Either way the true relative residual
+    V-cycle (:class:`upscale.core.multigrid.VCycle`). Either way the true relative residual
     ||b - A p|| / ||b|| of the unscaled system is computed; the direct solve is refined and
     the iterative one restarted with a tighter tolerance (a few times at most) until it is
     <= ``tolerance``.
 
-    info: 'method' ('direct', 'amg-cg' or 'trivial'), 'relative_residual', 'iterations'
-    (CG iterations, or refinement steps for the direct solve), 'unknowns', 'converged'.
+    Parameters
+    ----------
+    A : sparse matrix, (n, n)
+    b : array_like, (n,)
+    tolerance : float
+    direct_limit : int
+
+    Returns
+    -------
+    p : ndarray, (n,)
+    info : dict
+        'method' ('direct', 'amg-cg' or 'trivial'), 'relative_residual', 'iterations'
+        (CG iterations, or refinement steps for the direct solve), 'unknowns', 'converged'.
     """
+    A, b, diagonal = _checked_system(A, b)
+    trivial = np.diff(A.indptr) <= 1  # only the diagonal (empty rows are excluded by the check)
+    p = np.zeros(b.size)
+    p[trivial] = b[trivial] / diagonal[trivial]
+    keep = np.flatnonzero(~trivial)
+    info = {"method": "trivial", "iterations": 0, "unknowns": int(keep.size)}
+    if keep.size:
+        p[keep], method, steps = _solve_rest(A, b, p, trivial, keep, tolerance, direct_limit)
+        info.update(method=method, iterations=steps)
+    info["relative_residual"] = _relative_residual(A, b, p)
+    info["converged"] = bool(info["relative_residual"] <= tolerance)
+    if not info["converged"]:
+        log.warning("pressure solve (%s) reached a relative residual of %.2e, above %.0e",
+                    info["method"], info["relative_residual"], tolerance)
+    return p, info
+
+
+def _checked_system(A, b):
+    """A as a float CSR copy without duplicates or zeros, b as floats, and A's diagonal;
+    ValueError for mismatched shapes or a diagonal that is not positive."""
     A = sp.csr_matrix(A, dtype=float, copy=True)
     A.sum_duplicates()
     A.eliminate_zeros()
@@ -205,52 +264,84 @@ def solve_pressure(A, b, tolerance: float = 1e-10, direct_limit: int = DIRECT_LI
     diagonal = A.diagonal()
     if np.any(diagonal <= 0):
         raise ValueError("matrix has a zero or negative diagonal entry: not positive definite")
-    row_nnz = np.diff(A.indptr)
-    trivial = row_nnz <= 1  # only the diagonal (empty rows are excluded by the check above)
-    p = np.zeros(n)
-    p[trivial] = b[trivial] / diagonal[trivial]
-    keep = np.flatnonzero(~trivial)
-    info = {"method": "trivial", "iterations": 0, "unknowns": int(keep.size)}
-    if keep.size:
-        sub = A[keep][:, keep]
-        # Couplings between kept and trivial rows are zero by construction of a trivial row
-        # only if A is symmetric; move them to the right-hand side in any case.
-        rest = b[keep] - A[keep][:, np.flatnonzero(trivial)] @ p[trivial]
-        scaled, scale = unit_diagonal(sub)
-        if keep.size <= direct_limit:
-            p[keep], steps = refined_direct(sub, symmetric_lu(scaled), scale, rest, tolerance)
-            info.update(method="direct", iterations=steps)
-        else:
-            p[keep], steps = _amg_cg(sub, scaled, scale, rest, tolerance)
-            info.update(method="amg-cg", iterations=steps)
-    info["relative_residual"] = _relative_residual(A, b, p)
-    info["converged"] = bool(info["relative_residual"] <= tolerance)
-    if not info["converged"]:
-        log.warning("pressure solve (%s) reached a relative residual of %.2e, above %.0e",
-                    info["method"], info["relative_residual"], tolerance)
-    return p, info
+    return A, b, diagonal
+
+
+def _solve_rest(A, b, p, trivial, keep, tolerance: float, direct_limit: int):
+    """The solution on the rows ``keep`` given the ``trivial`` rows' values in p, the
+    method ('direct' or 'amg-cg') and its steps."""
+    sub = A[keep][:, keep]
+    # Couplings between kept and trivial rows vanish only if A is symmetric: moved to the right-hand side.
+    rest = b[keep] - A[keep][:, np.flatnonzero(trivial)] @ p[trivial]
+    scaled, scale = unit_diagonal(sub)
+    if keep.size <= direct_limit:
+        x, steps = refined_direct(sub, symmetric_lu(scaled), scale, rest, tolerance)
+        return x, "direct", steps
+    x, steps = _amg_cg(sub, scaled, scale, rest, tolerance)
+    return x, "amg-cg", steps
 
 
 def unit_diagonal(A: sp.spmatrix) -> tuple[sp.csr_matrix, np.ndarray]:
-    """The symmetric scaling D^-1/2 A D^-1/2 of a matrix with a positive diagonal, and the
-    factors D^-1/2 (n,): it evens out permeability contrasts before a solve."""
+    """The symmetric scaling D^-1/2 A D^-1/2 of a matrix with a positive diagonal.
+
+    It evens out permeability contrasts before a solve.
+
+    Parameters
+    ----------
+    A : sparse matrix, (n, n)
+
+    Returns
+    -------
+    scaled : scipy.sparse.csr_matrix
+    scale : ndarray, (n,)
+        The factors D^-1/2.
+    """
     scale = 1.0 / np.sqrt(A.diagonal())
     D = sp.diags(scale)
     return (D @ A @ D).tocsr(), scale
 
 
 def symmetric_lu(scaled: sp.spmatrix):
-    """Sparse LU (SuperLU) of a symmetric positive definite matrix. Symmetric mode
-    (diagonal pivots, minimum degree on A^T + A) keeps the fill of a 3D grid several times
-    smaller than SuperLU's default COLAMD ordering."""
+    """Sparse LU (SuperLU) of a symmetric positive definite matrix.
+
+    Symmetric mode (diagonal pivots, minimum degree on A^T + A) keeps the fill of a 3D grid
+    several times smaller than SuperLU's default COLAMD ordering.
+
+    Parameters
+    ----------
+    scaled : sparse matrix, (n, n)
+        Best scaled to unit diagonal first (:func:`unit_diagonal`).
+
+    Returns
+    -------
+    scipy.sparse.linalg.SuperLU
+    """
     return spla.splu(sp.csc_matrix(scaled), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0,
                      options={"SymmetricMode": True})
 
 
 def refined_direct(A, lu, scale: np.ndarray, b: np.ndarray, tolerance: float, refinements: int = 3):
-    """Solve ``A p = b`` with the LU of its scaled form (:func:`unit_diagonal`,
-    :func:`symmetric_lu`), refined while the relative residual exceeds ``tolerance``, at
-    most ``refinements`` times. Returns (p, refinement steps)."""
+    """Solve ``A p = b`` with the LU of its scaled form, refined.
+
+    Parameters
+    ----------
+    A : sparse matrix, (n, n)
+    lu : scipy.sparse.linalg.SuperLU
+        Of the scaled matrix (:func:`unit_diagonal`, :func:`symmetric_lu`).
+    scale : ndarray, (n,)
+        The scaling factors D^-1/2.
+    b : ndarray, (n,)
+    tolerance : float
+        Refined while the relative residual exceeds it ...
+    refinements : int
+        ... at most this many times.
+
+    Returns
+    -------
+    p : ndarray, (n,)
+    steps : int
+        Refinement steps made.
+    """
     p = scale * lu.solve(scale * b)
     steps = 0
     while steps < refinements and _relative_residual(A, b, p) > tolerance:
@@ -260,6 +351,8 @@ def refined_direct(A, lu, scale: np.ndarray, b: np.ndarray, tolerance: float, re
 
 
 def _amg_cg(A, scaled, scale, b, tolerance, restarts: int = 6, maxiter: int = 1000):
+    """Solve ``A p = b`` by CG on the scaled system with a V-cycle preconditioner, restarted
+    until the unscaled relative residual is at most ``tolerance``; returns (p, CG iterations)."""
     M = VCycle(scaled)
     bs = scale * b
     y = np.zeros_like(bs)
@@ -297,18 +390,33 @@ def whole_model_permeability(face_t, boundary_t, dx, dy, dz, axis, constant: flo
                              tolerance: float = 1e-10, direct_limit: int = DIRECT_LIMIT) -> dict:
     """Whole-model permeability along ``axis`` with sealed sides and unit pressure drop.
 
-    face_t: interior-face transmissibilities per axis (see :func:`assemble_pressure_system`);
-    boundary_t: (t_low, t_high) half-cell transmissibilities of the cells on the two faces
-    normal to ``axis``; dx (nx,), dy (ny,), dz (nz,) or (nx, ny, nz) in m; constant: the
-    factor that all the transmissibilities, faces and boundary alike, carry over mD*m (1 for
-    geometric ones); 'k' is divided by it.
+    Parameters
+    ----------
+    face_t, boundary_t
+        Interior-face transmissibilities per axis and (t_low, t_high), the half-cell
+        transmissibilities of the cells on the two faces normal to ``axis``
+        (see :func:`assemble_pressure_system`).
+    dx, dy : ndarray, (nx,), (ny,)
+        m.
+    dz : ndarray, (nz,) or (nx, ny, nz)
+        m.
+    axis : int or str
+    constant : float
+        The factor that all the transmissibilities, faces and boundary alike, carry over
+        mD*m (1 for geometric ones); 'k' is divided by it.
+    tolerance, direct_limit
+        As for :func:`solve_pressure`.
 
-    Returns a dict: 'k' (mD), 'rate' (inflow Q, in the units of the transmissibilities per
-    unit pressure), 'rate_out' (outflow; equal to Q to round-off), 'imbalance'
-    (|Q_in - Q_out| / max(|Q_in|, |Q_out|), 0 if both are 0), 'length' (m), 'bulk_volume'
-    (m3), 'pressure' ((nx, ny, nz), NaN in cells not connected to either constant-pressure
-    face), 'status' (see :func:`cell_status`), 'face_flux' ((t_low flux, t_high flux) per
-    cell of the two faces, inflow positive), 'solver' (info of :func:`solve_pressure`).
+    Returns
+    -------
+    dict
+        'k' (mD), 'rate' (inflow Q, in the units of the transmissibilities per unit
+        pressure), 'rate_out' (outflow; equal to Q to round-off), 'imbalance'
+        (|Q_in - Q_out| / max(|Q_in|, |Q_out|), 0 if both are 0), 'length' (m),
+        'bulk_volume' (m3), 'pressure' ((nx, ny, nz), NaN in cells not connected to either
+        constant-pressure face), 'status' (see :func:`cell_status`), 'face_flux' ((t_low
+        flux, t_high flux) per cell of the two faces, inflow positive), 'solver' (info of
+        :func:`solve_pressure`).
     """
     axis = axis_index(axis)
     shape, faces, t_low, t_high = _check_faces(face_t, axis, boundary_t)
@@ -318,7 +426,20 @@ def whole_model_permeability(face_t, boundary_t, dx, dy, dz, axis, constant: flo
     A, b, status = assemble_pressure_system(faces, (t_low, t_high), axis, p_low, p_high, return_status=True)
     p, info = solve_pressure(A, b, tolerance=tolerance, direct_limit=direct_limit)
     p = p.reshape(shape)
-    n = shape[axis]
+    q_in, q_out, imbalance, face_flux = _face_rates(p, t_low, t_high, axis, p_low, p_high)
+    length, volume = _model_size(dx, dy, dz, axis)
+    if volume <= 0:
+        raise ValueError("model bulk volume is zero")
+    return {"k": q_in * length ** 2 / (volume * (p_low - p_high) * constant), "rate": q_in, "rate_out": q_out,
+            "imbalance": imbalance, "length": length, "bulk_volume": volume,
+            "pressure": np.where(status == ISOLATED, np.nan, p), "status": status, "face_flux": face_flux,
+            "solver": info}
+
+
+def _face_rates(p, t_low, t_high, axis: int, p_low: float, p_high: float) -> dict:
+    """Inflow and outflow rates, their relative imbalance and the face fluxes (inflow, outflow)
+    of :func:`whole_model_permeability`; logs a warning when the imbalance is above BALANCE_WARNING."""
+    n = p.shape[axis]
     inflow = t_low * (p_low - np.take(p, [0], axis=axis))
     outflow = t_high * (np.take(p, [n - 1], axis=axis) - p_high)
     q_in, q_out = float(inflow.sum()), float(outflow.sum())
@@ -327,25 +448,22 @@ def whole_model_permeability(face_t, boundary_t, dx, dy, dz, axis, constant: flo
     if imbalance > BALANCE_WARNING:
         log.warning("flow along %s: inflow %.6g and outflow %.6g differ by %.2e (relative)",
                     AXES[axis], q_in, q_out, imbalance)
-    length, volume = _model_size(dx, dy, dz, axis)
-    if volume <= 0:
-        raise ValueError("model bulk volume is zero")
-    pressure = np.where(status == ISOLATED, np.nan, p)
-    return {
-        "k": q_in * length ** 2 / (volume * (p_low - p_high) * constant),
-        "rate": q_in,
-        "rate_out": q_out,
-        "imbalance": imbalance,
-        "length": length,
-        "bulk_volume": volume,
-        "pressure": pressure,
-        "status": status,
-        "face_flux": (inflow, outflow),
-        "solver": info,
-    }
+    return q_in, q_out, imbalance, (inflow, outflow)
 
 
 def boundary_half(half: np.ndarray, axis: int):
+    """The half-cell values of the cells on the low and high faces normal to ``axis``.
+
+    Parameters
+    ----------
+    half : ndarray, (nx, ny, nz)
+    axis : int
+
+    Returns
+    -------
+    (ndarray, ndarray)
+        Each with a length-1 ``axis``: the ``boundary_t`` of :func:`assemble_pressure_system`.
+    """
     n = half.shape[axis]
     return np.take(half, [0], axis=axis), np.take(half, [n - 1], axis=axis)
 
@@ -354,10 +472,21 @@ def fine_model_check(cells: GridArrays, axis, tolerance: float = 1e-10, direct_l
     """Whole-model flow check of a fine field along ``axis``.
 
     Transmissibilities are geometric (mD*m) two-point ones from ``cells.flow_permeability()``
-    (``upscale.tpfa.transmissibilities``); the boundary half-cell transmissibilities are the
-    per-cell half values of the face cells. Returns the dict of
-    :func:`whole_model_permeability` ('k' mD, 'rate' mD*m per unit pressure, 'pressure',
-    'solver', ...).
+    (:func:`upscale.core.two_point.transmissibilities`); the boundary half-cell
+    transmissibilities are the per-cell half values of the face cells.
+
+    Parameters
+    ----------
+    cells : GridArrays
+    axis : int or str
+    tolerance, direct_limit
+        As for :func:`solve_pressure`.
+
+    Returns
+    -------
+    dict
+        That of :func:`whole_model_permeability` ('k' mD, 'rate' mD*m per unit pressure,
+        'pressure', 'solver', ...).
     """
     axis = axis_index(axis)
     half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)

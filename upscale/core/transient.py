@@ -88,7 +88,8 @@ DEFAULT_WELL_RADIUS = 0.1      # m
 PEACEMAN_FACTOR = 0.28
 
 
-#: Default reported time span of :func:`transient_check`, in multiples of the time scale.
+#: Default reported time span of :func:`upscale.checks.transient.transient_check`, in
+#: multiples of the time scale.
 DEFAULT_SPAN = (1e-3, 3.0)
 
 
@@ -97,9 +98,9 @@ DEFAULT_SPAN = (1e-3, 3.0)
 BALANCE_WARNING = 1e-6
 
 
-#: Relative residual of each time step's solve in :func:`transient_check`: rates and
-#: cumulatives are then exact to about 1e-8, far below the fine-versus-coarse differences the
-#: check measures, at about two thirds of the CG iterations of 1e-10.
+#: Relative residual of each time step's solve in :func:`upscale.checks.transient.transient_check`:
+#: rates and cumulatives are then exact to about 1e-8, far below the fine-versus-coarse
+#: differences the check measures.
 CHECK_SOLVE_TOLERANCE = 1e-8
 
 
@@ -107,13 +108,25 @@ CHECK_SOLVE_TOLERANCE = 1e-8
 class TransientSystem:
     """A two-point flux grid with pore volumes and a constant-pressure drainage connection.
 
-    shape (nx, ny, nz); pore_volume (nx, ny, nz) m3; first, second, face_t: flat cell
-    indices (C order) and transmissibility, m3*cP/(day*bar), of every interior face with
-    T > 0; drain_t (nx, ny, nz): connection transmissibility to the drainage pressure,
-    m3*cP/(day*bar) (0 where not connected); solved (flat bool): cells in the pressure
-    system (all but those in a group of cells with no pore volume and no drainage, whose
-    pressure is undefined); drained (flat bool): cells connected to the drainage through
-    faces with T > 0; description: what was built (JSON-ready).
+    Attributes
+    ----------
+    shape : tuple of int
+        (nx, ny, nz).
+    pore_volume : ndarray, (nx, ny, nz)
+        m3.
+    first, second, face_t : ndarray
+        Flat cell indices (C order) and transmissibility, m3*cP/(day*bar), of every
+        interior face with T > 0.
+    drain_t : ndarray, (nx, ny, nz)
+        Connection transmissibility to the drainage pressure, m3*cP/(day*bar) (0 where not
+        connected).
+    solved : ndarray of bool, flat
+        Cells in the pressure system: all but those in a group of cells with no pore volume
+        and no drainage, whose pressure is undefined.
+    drained : ndarray of bool, flat
+        Cells connected to the drainage through faces with T > 0.
+    description : dict
+        What was built (JSON-ready).
     """
 
     shape: tuple[int, int, int]
@@ -128,6 +141,7 @@ class TransientSystem:
 
     @property
     def size(self) -> int:
+        """Number of cells."""
         return math.prod(self.shape)
 
     @property
@@ -142,40 +156,38 @@ class TransientSystem:
 
     @classmethod
     def from_arrays(cls, pore_volume, face_t, drain_t, description: dict | None = None) -> "TransientSystem":
-        """Build from pore volumes (nx, ny, nz) m3, interior-face transmissibilities per axis
-        (shapes (nx-1, ny, nz), (nx, ny-1, nz), (nx, ny, nz-1)) and drainage connection
-        transmissibilities (nx, ny, nz), all T in m3*cP/(day*bar)."""
-        pore_volume = np.asarray(pore_volume, dtype=float)
-        if pore_volume.ndim != 3:
-            raise ValueError(f"pore volume must be three-dimensional, got shape {pore_volume.shape}")
+        """Build from per-cell and per-face arrays.
+
+        Parameters
+        ----------
+        pore_volume : array_like, (nx, ny, nz)
+            m3, finite and >= 0.
+        face_t : sequence of three arrays
+            Interior-face transmissibilities per axis, shapes (nx-1, ny, nz), (nx, ny-1, nz),
+            (nx, ny, nz-1), m3*cP/(day*bar).
+        drain_t : array_like, (nx, ny, nz)
+            Drainage connection transmissibilities, m3*cP/(day*bar), finite and >= 0.
+        description : dict, optional
+            What was built.
+
+        Returns
+        -------
+        TransientSystem
+
+        Raises
+        ------
+        ValueError
+            For arrays of the wrong shape, or negative or non-finite values.
+        InputError
+            If the drainage connects to no cell.
+        """
+        pore_volume, drain_t = _checked_cells(pore_volume, drain_t)
         shape = pore_volume.shape
-        if not np.all(np.isfinite(pore_volume)) or np.any(pore_volume < 0):
-            raise ValueError("pore volumes must be finite and >= 0")
-        drain_t = np.asarray(drain_t, dtype=float)
-        if drain_t.shape != shape:
-            raise ValueError(f"drainage transmissibilities have shape {drain_t.shape}, expected {shape}")
-        if not np.all(np.isfinite(drain_t)) or np.any(drain_t < 0):
-            raise ValueError("drainage transmissibilities must be finite and >= 0")
-        index = np.arange(math.prod(shape)).reshape(shape)
-        first, second, value = [], [], []
-        for axis, t in enumerate(check_faces(face_t, shape)):
-            n = shape[axis]
-            keep = t > 0
-            first.append(np.take(index, np.arange(n - 1), axis=axis)[keep])
-            second.append(np.take(index, np.arange(1, n), axis=axis)[keep])
-            value.append(t[keep])
-        first, second, value = (np.concatenate(v) for v in (first, second, value))
+        first, second, value = _interior_faces(face_t, shape)
         if not np.any(drain_t > 0):
             raise InputError("the drainage connects to no cell (no cell with flow permeability "
                              "on the drained face or in the well column)")
-
-        n = index.size
-        graph = sp.coo_matrix((np.ones(first.size), (first, second)), shape=(n, n)).tocsr()
-        count, labels = connected_components(graph, directed=False)
-        group_pv = np.bincount(labels, weights=pore_volume.ravel(), minlength=count)
-        group_drain = np.bincount(labels, weights=drain_t.ravel(), minlength=count)
-        solved = ((group_pv > 0) | (group_drain > 0))[labels]
-        drained = (group_drain > 0)[labels]
+        solved, drained = _cell_groups(first, second, pore_volume, drain_t)
         return cls(tuple(int(s) for s in shape), pore_volume, first, second, value, drain_t,
                    solved, drained, dict(description or {}))
 
@@ -185,8 +197,21 @@ class TransientSystem:
         """The fine model: two-point transmissibilities from ``cells.flow_permeability()``
         (:mod:`upscale.core.two_point`) times the metric constant, pore volumes ``cells.pore_volume``.
 
-        cells: :class:`~upscale.core.grid.GridArrays`; drainage 'face' (with ``face``) or
-        'well' (with fine ``column`` (i, j); the grid centre if None).
+        Parameters
+        ----------
+        cells : GridArrays
+            The fine field.
+        drainage : {'face', 'well'}
+        face : str
+            With 'face': the drained model face (a key of :data:`FACES`).
+        column : (int, int), optional
+            With 'well': the fine well column (i, j); the grid centre if None.
+        well_radius : float
+            m.
+
+        Returns
+        -------
+        TransientSystem
         """
         drainage = check_drainage(drainage)
         k = cells.flow_permeability()
@@ -208,20 +233,99 @@ class TransientSystem:
         return system
 
 
+def _checked_cells(pore_volume, drain_t) -> tuple[np.ndarray, np.ndarray]:
+    """Pore volumes and drainage transmissibilities as float arrays, checked (ValueError)."""
+    pore_volume = np.asarray(pore_volume, dtype=float)
+    if pore_volume.ndim != 3:
+        raise ValueError(f"pore volume must be three-dimensional, got shape {pore_volume.shape}")
+    shape = pore_volume.shape
+    if not np.all(np.isfinite(pore_volume)) or np.any(pore_volume < 0):
+        raise ValueError("pore volumes must be finite and >= 0")
+    drain_t = np.asarray(drain_t, dtype=float)
+    if drain_t.shape != shape:
+        raise ValueError(f"drainage transmissibilities have shape {drain_t.shape}, expected {shape}")
+    if not np.all(np.isfinite(drain_t)) or np.any(drain_t < 0):
+        raise ValueError("drainage transmissibilities must be finite and >= 0")
+    return pore_volume, drain_t
+
+
+def _interior_faces(face_t, shape) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Flat cell indices (first, second) and transmissibility of the interior faces with T > 0."""
+    index = np.arange(math.prod(shape)).reshape(shape)
+    first, second, value = [], [], []
+    for axis, t in enumerate(check_faces(face_t, shape)):
+        n = shape[axis]
+        keep = t > 0
+        first.append(np.take(index, np.arange(n - 1), axis=axis)[keep])
+        second.append(np.take(index, np.arange(1, n), axis=axis)[keep])
+        value.append(t[keep])
+    return tuple(np.concatenate(v) for v in (first, second, value))
+
+
+def _cell_groups(first, second, pore_volume, drain_t) -> tuple[np.ndarray, np.ndarray]:
+    """Flat masks of the cells solved and drained, from the groups of cells joined by faces."""
+    n = pore_volume.size
+    graph = sp.coo_matrix((np.ones(first.size), (first, second)), shape=(n, n)).tocsr()
+    count, labels = connected_components(graph, directed=False)
+    group_pv = np.bincount(labels, weights=pore_volume.ravel(), minlength=count)
+    group_drain = np.bincount(labels, weights=drain_t.ravel(), minlength=count)
+    return ((group_pv > 0) | (group_drain > 0))[labels], (group_drain > 0)[labels]
+
+
 def check_drainage(drainage: str) -> str:
+    """The drainage set-up, checked.
+
+    Parameters
+    ----------
+    drainage : str
+
+    Returns
+    -------
+    str
+        'face' or 'well'; InputError otherwise.
+    """
     if drainage not in DRAINAGE:
         raise InputError(f"unknown drainage '{drainage}'; choose face or well")
     return drainage
 
 
 def drainage_face(face: str) -> tuple[int, bool]:
+    """The axis and side of a model face.
+
+    Parameters
+    ----------
+    face : str
+        A key of :data:`FACES`, such as 'x-'.
+
+    Returns
+    -------
+    (int, bool)
+        (axis, high side?); InputError for an unknown face.
+    """
     if face not in FACES:
         raise InputError(f"unknown face {face!r}; choose one of {', '.join(FACES)}")
     return FACES[face]
 
 
 def well_column(column, shape) -> tuple[int, int]:
-    """Fine well column (i, j), the grid centre if None; checked against ``shape``."""
+    """Fine well column (i, j), the grid centre if None; checked against ``shape``.
+
+    Parameters
+    ----------
+    column : (int, int) or None
+        Two whole numbers.
+    shape : tuple of int
+        (nx, ny, nz) of the fine grid.
+
+    Returns
+    -------
+    (int, int)
+
+    Raises
+    ------
+    InputError
+        If ``column`` is not two whole numbers inside the grid.
+    """
     if column is None:
         return shape[0] // 2, shape[1] // 2
     try:
@@ -237,7 +341,20 @@ def well_column(column, shape) -> tuple[int, int]:
 
 
 def face_connection(half: np.ndarray, axis: int, high: bool) -> np.ndarray:
-    """Drainage transmissibility: the half-cell values of the face's cells, 0 elsewhere."""
+    """Drainage transmissibility: the half-cell values of the face's cells, 0 elsewhere.
+
+    Parameters
+    ----------
+    half : ndarray, (nx, ny, nz)
+        Half-cell transmissibilities along ``axis``.
+    axis : int
+    high : bool
+        The high-index side of the axis (else the low one).
+
+    Returns
+    -------
+    ndarray, (nx, ny, nz)
+    """
     out = np.zeros(half.shape)
     index = [slice(None)] * 3
     index[axis] = half.shape[axis] - 1 if high else 0
@@ -246,17 +363,48 @@ def face_connection(half: np.ndarray, axis: int, high: bool) -> np.ndarray:
 
 
 def connection_summary(drain_t: np.ndarray) -> dict:
+    """A JSON-ready summary of a drainage connection.
+
+    Parameters
+    ----------
+    drain_t : ndarray
+        Drainage connection transmissibilities, m3*cP/(day*bar).
+
+    Returns
+    -------
+    dict
+        'connection_factor' (their sum) and 'connected_cells' (their non-zero count).
+    """
     return {"connection_factor": float(drain_t.sum()), "connected_cells": int(np.count_nonzero(drain_t))}
 
 
 def well_factors(kx, ky, dx, dy, dz, radius: float = DEFAULT_WELL_RADIUS,
                  constant: float = METRIC_TRANSMISSIBILITY) -> np.ndarray:
-    """Connection factors of a vertical well in one column, m3*cP/(day*bar) (see module notes).
+    """Connection factors of a vertical well in one column (see the module notes).
 
-    kx, ky: flow permeability of the column's cells (mD, times ntg); dx, dy: the column's
-    cell sizes (m); dz (nz,): thicknesses (m); radius: well radius r_w (m). Cells with
-    kx * ky = 0 or dz = 0 get 0. Raises InputError if a cell's equivalent radius is not
-    larger than the well radius (cell too small for the well).
+    Parameters
+    ----------
+    kx, ky : array_like, (nz,)
+        Flow permeability of the column's cells, mD (times ntg).
+    dx, dy : float
+        The column's cell sizes, m.
+    dz : array_like, (nz,)
+        Thicknesses, m.
+    radius : float
+        Well radius r_w, m.
+    constant : float
+        The transmissibility constant C.
+
+    Returns
+    -------
+    ndarray, (nz,)
+        m3*cP/(day*bar); 0 in cells with kx * ky = 0 or dz = 0.
+
+    Raises
+    ------
+    InputError
+        If a cell's equivalent radius is not larger than the well radius (cell too small
+        for the well), or the radius is not > 0.
     """
     kx = np.asarray(kx, dtype=float)
     ky = np.asarray(ky, dtype=float)
@@ -286,6 +434,23 @@ def time_grid(first: float, end: float, steps_per_doubling: int = 8) -> np.ndarr
     ``steps_per_doubling`` equal steps from 0 to ``first``; then the step doubles and is
     taken ``steps_per_doubling / 2`` times, so each phase doubles the time, until ``end`` is
     reached (the last time is first * 2^m >= end). dt / t stays between 1/s and 2/s.
+
+    Parameters
+    ----------
+    first, end : float
+        Days, 0 < first <= end.
+    steps_per_doubling : int
+        s, even and >= 2.
+
+    Returns
+    -------
+    ndarray
+        Increasing step end times, days.
+
+    Raises
+    ------
+    InputError
+        Unless 0 < first <= end and s is even and >= 2.
     """
     s = int(steps_per_doubling)
     if s < 2 or s % 2:
@@ -301,12 +466,26 @@ def time_grid(first: float, end: float, steps_per_doubling: int = 8) -> np.ndarr
 
 
 def projected_guess(A, b: np.ndarray, vectors) -> np.ndarray:
-    """The A-norm best approximation of the solution of ``A x = b`` (A symmetric positive
-    definite) in the span of ``vectors``: x0 = W (W^T A W)^-1 W^T b with W an orthonormal
-    basis of the span (nearly dependent directions dropped). Successive time steps have
-    nearly the same solution space, so CG from x0 needs far fewer iterations (Fischer 1998,
-    Projection techniques for iterative solution of Ax = b with successive right-hand
-    sides, Comput. Methods Appl. Mech. Engrg. 163; from memory)."""
+    """The A-norm best approximation of the solution of ``A x = b`` in the span of ``vectors``.
+
+    x0 = W (W^T A W)^-1 W^T b with W an orthonormal basis of the span (nearly dependent
+    directions dropped). Successive time steps have nearly the same solution space, so CG
+    from x0 needs far fewer iterations (Fischer 1998, Projection techniques for iterative
+    solution of Ax = b with successive right-hand sides, Comput. Methods Appl. Mech.
+    Engrg. 163; from memory).
+
+    Parameters
+    ----------
+    A : sparse matrix or ndarray, (n, n)
+        Symmetric positive definite.
+    b : ndarray, (n,)
+    vectors : sequence of ndarray, (n,) each
+
+    Returns
+    -------
+    ndarray, (n,)
+        x0; zeros if the span is empty.
+    """
     W, R = np.linalg.qr(np.column_stack(vectors))
     keep = np.abs(np.diag(R)) > 1e-10 * np.abs(np.diag(R)).max(initial=0.0)
     if not keep.any():
@@ -336,6 +515,7 @@ class _StepSolver:
         self.history: list[np.ndarray] = []  # the last solutions, newest first
 
     def _prepare(self, dt: float):
+        """The matrix, its scaled form, the scale and the solver of step dt (cached)."""
         for known, entry in self.cache.items():
             if abs(known - dt) <= 1e-12 * dt:
                 self.cache.move_to_end(known)
@@ -350,7 +530,14 @@ class _StepSolver:
             self.cache.popitem(last=False)
         return dt, entry
 
+    def summary(self) -> dict:
+        """Method, unknowns, factorisations, CG iterations and worst relative residual so far."""
+        return {"method": "direct" if self.direct else "amg-cg", "unknowns": int(self.storage.size),
+                "factorisations": self.factorisations, "iterations": self.iterations,
+                "worst_relative_residual": self.worst_residual}
+
     def step(self, dt: float, u: np.ndarray) -> tuple[np.ndarray, float]:
+        """The pressure after a step dt from u, and the step taken (a cached one within a relative 1e-12)."""
         dt, (A, scaled, scale, solver) = self._prepare(dt)
         rhs = self.storage / dt * u
         norm = np.linalg.norm(rhs)
@@ -377,7 +564,15 @@ class _StepSolver:
 
 
 def check_fluid(compressibility: float, viscosity: float) -> None:
-    """InputError unless the total compressibility (1/bar) and viscosity (cP) are > 0."""
+    """Check the fluid: InputError unless both are finite and > 0.
+
+    Parameters
+    ----------
+    compressibility : float
+        Total compressibility, 1/bar.
+    viscosity : float
+        cP.
+    """
     for name, value in (("compressibility", compressibility), ("viscosity", viscosity)):
         if not (np.isfinite(value) and value > 0):
             raise InputError(f"{name} must be > 0, got {value}")
@@ -387,26 +582,59 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
              p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
              viscosity: float = DEFAULT_VISCOSITY, keep_pressures: bool = False,
              direct_limit: int = DIRECT_LIMIT, tolerance: float = 1e-10) -> dict:
-    """Drain ``system`` from a uniform ``p_initial`` (bar) at ``p_drain`` (bar).
+    """Drain ``system`` from a uniform ``p_initial`` at ``p_drain``, each step implicit Euler.
 
-    times_days: increasing step end times (days; the first step starts at 0), each step
-    implicit Euler (see :func:`time_grid` for a geometric grid that reuses factorisations).
-    compressibility c_t (1/bar), viscosity (cP). Systems with at most ``direct_limit``
-    unknowns are solved by sparse LU (SuperLU in symmetric mode, refined up to twice while
-    the relative residual is above ``tolerance``), larger ones by conjugate gradients with a
-    pyamg smoothed aggregation preconditioner (to ``tolerance``, warm-started from the last
-    pressure); either way one factorisation or hierarchy per distinct step, the last four
-    kept. The cumulative-versus-depletion identity holds to about the solves' residual.
+    Systems with at most ``direct_limit`` unknowns are solved by sparse LU (SuperLU in
+    symmetric mode, refined up to twice while the relative residual is above ``tolerance``),
+    larger ones by conjugate gradients with a pyamg smoothed aggregation preconditioner (to
+    ``tolerance``, warm-started from the last pressure); either way one factorisation or
+    hierarchy per distinct step, the last four kept. The cumulative-versus-depletion
+    identity holds to about the solves' residual.
 
-    Returns a dict of numpy values: 'time' (days), 'rate' (m3/day, positive out, at each
-    time), 'cumulative' (m3), 'depletion' (sum PV c_t (p_initial - p), m3, at each time:
-    equal to 'cumulative' to round-off), 'balance_error' (largest |cumulative - depletion|
-    over the final depletion), 'pressure' (bar, (nx, ny, nz), at the last time; NaN in cells
-    outside the pressure system), 'drainable' (sum PV c_t (p_initial - p_drain) over the
-    cells connected to the drainage, m3: the cumulative at infinite time), 'pore_volume'
-    (m3), 'solver' (method, factorisations, iterations, worst relative residual); with
-    ``keep_pressures``, 'pressures' (nt, nx, ny, nz).
+    Parameters
+    ----------
+    system : TransientSystem
+    times_days : array_like
+        Increasing step end times, days; the first step starts at 0 (see :func:`time_grid`
+        for a geometric grid that reuses factorisations).
+    p_initial, p_drain : float
+        Initial and drainage pressure, bar.
+    compressibility : float
+        Total compressibility c_t, 1/bar.
+    viscosity : float
+        cP.
+    keep_pressures : bool
+        Also return the pressure at every time.
+    direct_limit : int
+    tolerance : float
+
+    Returns
+    -------
+    dict
+        Numpy values: 'time' (days), 'rate' (m3/day, positive out, at each time),
+        'cumulative' (m3), 'depletion' (sum PV c_t (p_initial - p), m3, at each time: equal
+        to 'cumulative' to round-off), 'balance_error' (largest |cumulative - depletion|
+        over the final depletion), 'pressure' (bar, (nx, ny, nz), at the last time; NaN in
+        cells outside the pressure system), 'drainable' (sum PV c_t (p_initial - p_drain)
+        over the cells connected to the drainage, m3: the cumulative at infinite time),
+        'pore_volume' (m3), 'solver' (method, factorisations, iterations, worst relative
+        residual); with ``keep_pressures``, 'pressures' (nt, nx, ny, nz).
     """
+    times = _checked_run(times_days, p_initial, p_drain, compressibility, viscosity)
+    # the system on the cells with a defined pressure, then implicit Euler steps through the times
+    solved, K, drain = _solved_system(system, viscosity)
+    storage = system.pore_volume.ravel()[solved] * compressibility
+    solver = _StepSolver(K, storage, direct_limit, tolerance)
+    run = _march(solver, times, drain, storage, p_initial, p_drain, solved, system.size if keep_pressures else None)
+    result = _run_result(system, run, solved, p_initial, p_drain, compressibility)  # checks the balance
+    result["solver"] = solver.summary()
+    if keep_pressures:
+        result["pressures"] = run["pressures"].reshape((times.size,) + system.shape)
+    return result
+
+
+def _checked_run(times_days, p_initial, p_drain, compressibility, viscosity) -> np.ndarray:
+    """The step end times as a flat float array, all arguments checked (InputError)."""
     times = np.asarray(times_days, dtype=float).ravel()
     if times.size == 0 or not np.all(np.isfinite(times)) or times[0] <= 0 or np.any(np.diff(times) <= 0):
         raise InputError("times must be finite, > 0 and strictly increasing (days)")
@@ -414,7 +642,12 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
     for name, value in (("initial pressure", p_initial), ("drainage pressure", p_drain)):
         if not np.isfinite(value):
             raise InputError(f"{name} must be finite, got {value}")
+    return times
 
+
+def _solved_system(system: TransientSystem, viscosity: float):
+    """The cells solved (flat indices), the conductance matrix K on them (m3/(day*bar):
+    faces and drainage) and their drainage conductances."""
     solved = np.flatnonzero(system.solved)
     position = np.full(system.size, -1)
     position[solved] = np.arange(solved.size)
@@ -428,16 +661,17 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
     K = sp.csr_matrix((np.concatenate([diagonal, -value, -value]),
                        (np.concatenate([np.arange(m), first, second]),
                         np.concatenate([np.arange(m), second, first]))), shape=(m, m))
-    pv = system.pore_volume.ravel()[solved]
-    storage = pv * compressibility
-    solver = _StepSolver(K, storage, direct_limit, tolerance)
+    return solved, K, drain
 
-    u = np.full(m, float(p_initial) - float(p_drain))   # pressure above the drainage pressure
+
+def _march(solver: _StepSolver, times, drain, storage, p_initial, p_drain, solved, size) -> dict:
+    """Step from the initial pressure through ``times``: 'time', 'rate', 'cumulative' and
+    'depletion' at each time, the last pressure above p_drain 'u' and, given the model
+    ``size``, the 'pressures' of every cell at each time (NaN outside the system)."""
+    u = np.full(solved.size, float(p_initial) - float(p_drain))   # pressure above the drainage pressure
     u0 = u.copy()
-    rate = np.zeros(times.size)
-    cumulative = np.zeros(times.size)
-    depletion = np.zeros(times.size)
-    pressures = np.full((times.size, system.size), np.nan) if keep_pressures else None
+    rate, cumulative, depletion = np.zeros(times.size), np.zeros(times.size), np.zeros(times.size)
+    pressures = None if size is None else np.full((times.size, size), np.nan)
     total, previous = 0.0, 0.0
     for n, t in enumerate(times):
         u, dt = solver.step(t - previous, u)
@@ -446,38 +680,34 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
         total += rate[n] * dt
         cumulative[n] = total
         depletion[n] = float(storage @ (u0 - u))
-        if keep_pressures:
+        if pressures is not None:
             pressures[n, solved] = u + p_drain
+    return {"time": times, "rate": rate, "cumulative": cumulative, "depletion": depletion, "u": u,
+            "pressures": pressures}
+
+
+def _run_result(system: TransientSystem, run: dict, solved, p_initial, p_drain, compressibility) -> dict:
+    """The result dict of :func:`simulate` but 'solver' and 'pressures'; logs a warning when
+    cumulative and depletion differ by more than BALANCE_WARNING."""
+    cumulative, depletion = run["cumulative"], run["depletion"]
     scale = max(abs(depletion[-1]), np.finfo(float).tiny)
     balance = float(np.max(np.abs(cumulative - depletion)) / scale)
     if balance > BALANCE_WARNING:
         log.warning("transient run: cumulative production and depletion differ by %.2e (relative)", balance)
     pressure = np.full(system.size, np.nan)
-    pressure[solved] = u + p_drain
+    pressure[solved] = run["u"] + p_drain
     drained = system.drained.ravel()
-    result = {
-        "time": times,
-        "rate": rate,
-        "cumulative": cumulative,
-        "depletion": depletion,
-        "balance_error": balance,
-        "pressure": pressure.reshape(system.shape),
-        "drainable": float(np.sum(system.pore_volume.ravel()[drained]) * compressibility
-                           * (float(p_initial) - float(p_drain))),
-        "pore_volume": system.total_pore_volume,
-        "solver": {"method": "direct" if solver.direct else "amg-cg", "unknowns": int(m),
-                   "factorisations": solver.factorisations, "iterations": solver.iterations,
-                   "worst_relative_residual": solver.worst_residual},
-    }
-    if keep_pressures:
-        result["pressures"] = pressures.reshape((times.size,) + system.shape)
-    return result
+    return {"time": run["time"], "rate": run["rate"], "cumulative": cumulative, "depletion": depletion,
+            "balance_error": balance, "pressure": pressure.reshape(system.shape),
+            "drainable": float(np.sum(system.pore_volume.ravel()[drained]) * compressibility
+                               * (float(p_initial) - float(p_drain))),
+            "pore_volume": system.total_pore_volume}
 
 
 def time_scale(cells: GridArrays, drainage: str = "face", face: str = "x-", column=None,
                compressibility: float = DEFAULT_COMPRESSIBILITY, viscosity: float = DEFAULT_VISCOSITY,
                connection_factor: float | None = None) -> dict:
-    """Drainage time scale of a fine field, days (JSON-ready dict).
+    """Drainage time scale of a fine field, days.
 
     Diffusion time t_D = L^2 phi mu c_t / (C k) with C = METRIC_TRANSMISSIBILITY (0.008527:
     D = C k / (phi mu c_t) is in m2/day for k in mD, mu in cP, c_t in 1/bar), phi = total
@@ -487,6 +717,24 @@ def time_scale(cells: GridArrays, drainage: str = "face", face: str = "x-", colu
     horizontal distance from the well column's centre to the farthest model corner. For the
     well the tank time PV c_t mu / J (J = ``connection_factor``, the summed well connection
     factors) is added: the connection's own delay.
+
+    Parameters
+    ----------
+    cells : GridArrays
+    drainage, face, column
+        As for :meth:`TransientSystem.from_fine`.
+    compressibility : float
+        c_t, 1/bar.
+    viscosity : float
+        mu, cP.
+    connection_factor : float, optional
+        J, m3*cP/(day*bar).
+
+    Returns
+    -------
+    dict
+        JSON-ready: 'diffusion_time_days', 'length_m', 'permeability_mD', 'porosity',
+        'time_scale_days' and, for the well with J, 'connection_time_days'.
     """
     drainage = check_drainage(drainage)
     bulk = cells.bulk_volume * cells.active
@@ -495,6 +743,20 @@ def time_scale(cells: GridArrays, drainage: str = "face", face: str = "x-", colu
     if volume <= 0 or pore <= 0:
         raise InputError("the field has no pore volume: nothing drains")
     phi = pore / volume
+    length, perm = _drainage_path(cells, drainage, face, column, bulk, volume)
+    if perm <= 0:
+        raise InputError("the field has no flow permeability along the drainage direction")
+    diffusion = length ** 2 * phi * viscosity * compressibility / (METRIC_TRANSMISSIBILITY * perm)
+    out = {"diffusion_time_days": diffusion, "length_m": length, "permeability_mD": perm,
+           "porosity": phi, "time_scale_days": diffusion}
+    if drainage == "well" and connection_factor:
+        tank = pore * compressibility * viscosity / connection_factor
+        out.update(connection_time_days=tank, time_scale_days=diffusion + tank)
+    return out
+
+
+def _drainage_path(cells: GridArrays, drainage: str, face: str, column, bulk, volume: float) -> tuple[float, float]:
+    """The length L (m) and mean flow permeability k (mD) of :func:`time_scale`."""
     k = cells.flow_permeability()
     lx, ly = float(cells.dx.sum()), float(cells.dy.sum())
     if drainage == "face":
@@ -507,12 +769,4 @@ def time_scale(cells: GridArrays, drainage: str = "face", face: str = "x-", colu
         xc = float(cells.dx[:i].sum() + cells.dx[i] / 2)
         yc = float(cells.dy[:j].sum() + cells.dy[j] / 2)
         length = math.hypot(max(xc, lx - xc), max(yc, ly - yc))
-    if perm <= 0:
-        raise InputError("the field has no flow permeability along the drainage direction")
-    diffusion = length ** 2 * phi * viscosity * compressibility / (METRIC_TRANSMISSIBILITY * perm)
-    out = {"diffusion_time_days": diffusion, "length_m": length, "permeability_mD": perm,
-           "porosity": phi, "time_scale_days": diffusion}
-    if drainage == "well" and connection_factor:
-        tank = pore * compressibility * viscosity / connection_factor
-        out.update(connection_time_days=tank, time_scale_days=diffusion + tank)
-    return out
+    return length, perm

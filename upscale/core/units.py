@@ -51,17 +51,27 @@ LENGTH_TO_M = {"m": 1.0, "metre": 1.0, "meter": 1.0, "metres": 1.0, "meters": 1.
 PERMEABILITY_TO_MD = {"md": 1.0, "millidarcy": 1.0, "d": 1000.0, "darcy": 1000.0}
 
 
+#: name -> (units string, constant for mD and the length unit, metres -> length unit).
 TRANSMISSIBILITY_UNITS = {
     "metric": ("m3*cP/(day*bar)", METRIC_TRANSMISSIBILITY, 1.0),
     "field": ("rb*cP/(day*psi)", FIELD_TRANSMISSIBILITY, 1.0 / FOOT_M),
 }
 
 
-"""name -> (units string, constant for mD and the length unit, metres -> length unit)."""
-
-
 def unit_system(units: str) -> tuple[str, float, float]:
-    """(units string, constant, metres-to-length factor) of ``metric`` or ``field``."""
+    """The transmissibility unit system of a name.
+
+    Parameters
+    ----------
+    units : str
+        'metric' or 'field'.
+
+    Returns
+    -------
+    (str, float, float)
+        The units string, the constant (for mD and the length unit) and the
+        metres-to-length factor; InputError for an unknown name.
+    """
     if units not in TRANSMISSIBILITY_UNITS:
         raise InputError(f"unknown transmissibility units '{units}'; choose metric or field")
     return TRANSMISSIBILITY_UNITS[units]
