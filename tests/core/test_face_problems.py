@@ -21,19 +21,52 @@ def _dataset(k, dx, dy, dz, kz=None):
     return fine_dataset(k, k, kz, np.full(k.shape, 0.2), dx, dy, dz)
 
 
-def test_homogeneous_transmissibility_and_unit_multipliers():
+@pytest.mark.parametrize("bc", ["sealed", "periodic", "linear"])
+@pytest.mark.parametrize("border", [0, 1, 2])
+def test_homogeneous_transmissibility_and_unit_multipliers(bc, border):
     # Two-point flux between coarse centres: T = C k A / L (common practice, no single source).
+    # Homogeneous medium: the flow-based face value is the same, whatever the border ring
+    # around the two blocks and the boundary condition of the block problems (the face
+    # flux is taken over the shared face only: with the whole bordered cross-section it
+    # came out 2 to 4 times too large).
     k = np.full((6, 4, 6), 50.0)
     dx, dy, dz = np.full(6, 10.0), np.full(4, 20.0), np.full(6, 2.0)
-    coarse = coarsen(_dataset(k, dx, dy, dz), ratio=(2, 2, 3), method="flow", multipliers=True)
+    coarse = coarsen(_dataset(k, dx, dy, dz), ratio=(2, 2, 3), method="flow", bc=bc, border=border,
+                     multipliers=True)
     c = METRIC_TRANSMISSIBILITY
-    assert coarse.tx.values == pytest.approx(c * 50.0 * (40.0 * 6.0) / 20.0, rel=1e-12)
-    assert coarse.ty.values == pytest.approx(c * 50.0 * (20.0 * 6.0) / 40.0, rel=1e-12)
-    assert coarse.tz.values == pytest.approx(c * 50.0 * (20.0 * 40.0) / 6.0, rel=1e-12)
+    assert coarse.tx.values == pytest.approx(c * 50.0 * (40.0 * 6.0) / 20.0, rel=1e-10)
+    assert coarse.ty.values == pytest.approx(c * 50.0 * (20.0 * 6.0) / 40.0, rel=1e-10)
+    assert coarse.tz.values == pytest.approx(c * 50.0 * (20.0 * 40.0) / 6.0, rel=1e-10)
     for name in "xyz":
         np.testing.assert_allclose(coarse[f"t{name}_multiplier"].values, 1.0, rtol=1e-10)
     assert coarse.tx.dims == ("x_face", "y", "z") and coarse.tx.sizes["x_face"] == 2
     assert coarse.tz.attrs["units"] == "m3*cP/(day*bar)"
+
+
+@pytest.mark.parametrize("border", [0, 1, 2])
+def test_layered_faces_take_the_exact_series_and_parallel_values(border):
+    # Layers normal to x, a different k in every fine layer (Bear 1972, ch. 5: layers in
+    # series along x, in parallel across). Flow along x is one-dimensional, its pressure
+    # piecewise linear, so the face value T = Q / (p1 - p2) over the two blocks' averaged
+    # pressures has a closed form, whatever the border ring; across (y, z) every
+    # multiplier is 1.
+    kx = np.random.default_rng(7).lognormal(2.0, 1.0, 8)
+    k = np.broadcast_to(kx[:, None, None], (8, 4, 4)).copy()
+    dx, dy, dz = np.full(8, 2.0), np.full(4, 3.0), np.full(4, 1.0)
+    coarse = coarsen(_dataset(k, dx, dy, dz), ratio=(2, 2, 2), method="flow", border=border, multipliers=True)
+    area = 6.0 * 2.0  # block cross-section, m2
+    # 1-D flow with unit flux density: pressure drop over each fine layer dx / k; the
+    # blocks' mean pressures follow from the piecewise-linear profile (layers of equal
+    # size, so the mean of the cell-centre pressures is the block average).
+    resistance = dx / kx
+    faces_at = np.concatenate([[0.0], np.cumsum(resistance)])
+    centres = faces_at[:-1] + 0.5 * resistance
+    block_p = -centres.reshape(4, 2).mean(axis=1)       # p falls along x
+    expected = METRIC_TRANSMISSIBILITY * area / (block_p[:-1] - block_p[1:])
+    found = coarse.tx.values * coarse.tx_multiplier.values
+    np.testing.assert_allclose(found, np.broadcast_to(expected[:, None, None], found.shape), rtol=1e-10)
+    for name in "yz":
+        np.testing.assert_allclose(coarse[f"t{name}_multiplier"].values, 1.0, rtol=1e-10)
 
 
 def test_field_units():
@@ -100,10 +133,15 @@ def test_multiplier_csv_columns():
     assert lines[1:] == ["0,0,0,x,0.5", "0,0,0,z,1", "0,0,1,z,0"]
 
 
-def test_multipliers_bring_the_whole_model_closer_to_the_fine_one():
+@pytest.mark.parametrize("border", [0, 1])
+def test_multipliers_bring_the_whole_model_close_to_the_fine_one(border):
     # Thin patchy low-permeability streaks (partial vertical barriers) inside coarse blocks:
     # arithmetic kz hides them; flow-based multipliers put the connectivity back. The whole
-    # model's vertical flow (no-flow sides, unit drop; upscale.globalflow) is compared.
+    # model's vertical flow (no-flow sides, unit drop) is compared with the fine one.
+    # Bounds: without multipliers the error is of order 10 (ten times too permeable);
+    # with them it is a few percent here (0.059 at border 0, measured; 25 % allowed). The
+    # border-1 face problems gave 1.39 before their face flux was taken over the shared
+    # face alone: the bound catches that.
     from upscale.checks.steady import steady_check
 
     rng = np.random.default_rng(4)
@@ -114,11 +152,9 @@ def test_multipliers_bring_the_whole_model_closer_to_the_fine_one():
         kz[:, :, layer][patch] = 0.01
     ds = _dataset(k, np.full(12, 10.0), np.full(12, 10.0), np.full(12, 1.0), kz=kz)
     plain = coarsen(ds, ratio=(3, 3, 4), method="arithmetic")
-    fixed = coarsen(ds, ratio=(3, 3, 4), method="arithmetic", multipliers=True)
-    error_plain = abs(steady_check(ds, plain)["global"]["z"]["relative_error"])
-    error_fixed = abs(steady_check(ds, fixed)["global"]["z"]["relative_error"])
-    assert error_plain > 1.0            # arithmetic kz across streaks: far too permeable
-    assert error_fixed < 0.25 * error_plain
+    fixed = coarsen(ds, ratio=(3, 3, 4), method="arithmetic", multipliers=True, border=border)
+    assert abs(steady_check(ds, plain)["global"]["z"]["relative_error"]) > 5.0
+    assert abs(steady_check(ds, fixed)["global"]["z"]["relative_error"]) < 0.25
 
 
 @settings(max_examples=20, deadline=None)
