@@ -44,7 +44,7 @@ def test_demo_command_runs_end_to_end(tmp_path):
     summary = (tmp_path / "reports" / "demo" / "summary.txt").read_text()
     assert "Caution" in summary and "qualified engineers" in summary
     listed = [line.split(maxsplit=1)[1] for line in done.stdout.splitlines() if line.startswith("  ")]
-    assert len(listed) == 8 and all(Path(p).exists() for p in listed)
+    assert len(listed) == 9 and all(Path(p).exists() for p in listed)
     # The demo ends with the full report and prints where it is.
     report = tmp_path / "reports" / "demo" / "index.html"
     assert done.stdout.splitlines()[-1].startswith(f"report: {report}")

@@ -19,8 +19,7 @@ import xarray as xr
 from .._runtime import available_memory
 from ..core.grid import AXES, GridArrays, axis_index
 from ..core.pressure import DIRECT_LIMIT, boundary_half, fine_model_check, whole_model_permeability
-from ..core.two_point import cell_geometry, half_transmissibility
-from ..io.coarse_file import coarse_faces, coarse_partition, transmissibility_constant
+from ..io.coarse_file import coarse_partition, coarse_two_point
 from ..io.schema import arrays
 from ..io.validation import validate
 
@@ -160,14 +159,8 @@ def coarse_model_check(coarse: xr.Dataset, axis, tolerance: float = 1e-10,
         As :func:`whole_model_permeability` returns it.
     """
     axis = axis_index(axis)
-    ds = validate(coarse, where="coarse grid")
-    cells = arrays(ds)
-    constant = transmissibility_constant(ds)
-    faces = [t / constant for t in coarse_faces(ds, cells.shape)]  # -> mD*m, like the halves
-    volume, lengths = cell_geometry(cells.dx, cells.dy, cells.dz)
-    k = cells.flow_permeability()[axis]
-    half = half_transmissibility(k, volume, lengths[axis])
-    return whole_model_permeability(faces, boundary_half(half, axis), cells.dx, cells.dy, cells.dz,
+    cells, faces, halves = coarse_two_point(validate(coarse, where="coarse grid"))
+    return whole_model_permeability(faces, boundary_half(halves[axis], axis), cells.dx, cells.dy, cells.dz,
                                     axis, tolerance=tolerance, direct_limit=direct_limit)
 
 

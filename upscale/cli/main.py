@@ -21,6 +21,7 @@ EXAMPLES = {
         upscale coarsen fields/demo.nc -o fields/demo_coarse.nc --ratio 5 5 5 --method flow --bc sealed
         upscale coarsen fine.nc -o coarse.nc --ratio 4 4 1 --edges z=0,3,10,20 --method arithmetic,arithmetic,harmonic
         upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --method flow --bc periodic --border 2 --multipliers
+        upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --method flow --bc global
         upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --memory 2GB --workers 2
         upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --scheduler tcp://127.0.0.1:8786""",
     "inspect": "upscale inspect fields/demo.nc",
@@ -30,7 +31,9 @@ EXAMPLES = {
         upscale make-field channels -o fields/channels.nc --shape 80 60 20 --seed 3
         upscale make-field demo -o fields/demo.nc""",
     "demo": "upscale demo            # writes fields/demo*.nc and reports/demo/",
-    "check": "upscale check fields/demo.nc fields/demo_coarse.nc --report reports/demo",
+    "check": """\
+        upscale check fields/demo.nc fields/demo_coarse.nc --report reports/demo
+        upscale check fields/demo.nc fields/demo_coarse.nc --checks steady,diagonal""",
     "layers": "upscale layers fields/demo.nc --target 10",
     "bench": """\
         upscale bench                  # prints timings and ratios side by side
@@ -95,8 +98,13 @@ def _coarsen_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--method", default="flow", help="arithmetic, harmonic, geometric, power or flow; "
                    "or one per axis: arithmetic,arithmetic,harmonic (default flow)")
     p.add_argument("--omega", type=float, help="exponent of the power average")
-    p.add_argument("--bc", default="sealed", help="local boundary condition for flow: sealed, periodic, linear")
-    p.add_argument("--border", type=int, default=0, help="border ring of fine cells around each block (flow)")
+    p.add_argument("--bc", default="sealed", help="boundary condition for flow: sealed, periodic, linear, or "
+                   "global (local-global face transmissibilities, written as multipliers)")
+    p.add_argument("--border", type=int, default=0, help="border ring of fine cells around each block (flow), "
+                   "or around each face's two blocks (global)")
+    p.add_argument("--global-solves", default="coarse", help="with --bc global: coarse (local problems driven by "
+                   "the coarse model, the default) or fine (fitted to three fine whole-model solves)")
+    p.add_argument("--passes", type=int, help="with --bc global: the most passes (default 3 coarse, 10 fine)")
     p.add_argument("--multipliers", action="store_true", help="compute flow-based transmissibility multipliers")
     p.add_argument("--multipliers-csv", metavar="FILE", help="also write all multipliers as CSV (i,j,k,direction,multiplier)")
     p.add_argument("--units", default="metric", help="transmissibility units: metric or field")
@@ -139,6 +147,11 @@ def _check_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("fine")
     p.add_argument("coarse")
     p.add_argument("--report", help="folder for index.html and metrics.json")
+    p.add_argument("--checks", help="comma-separated subset of steady,diagonal,transient,blocks,layering "
+                   "(default all)")
+    p.add_argument("--compare", nargs="+", default=[], metavar="OTHER.nc",
+                   help="other coarse grids of the same field and blocks: their steady and diagonal errors "
+                   "beside this one's")
     p.add_argument("--drainage", choices=("face", "well"), default="face",
                    help="transient check: drain through a model face or a vertical well (default face)")
     p.add_argument("--face", default="x-", help="drained face: x-, x+, y-, y+, z- or z+ (default x-)")
@@ -190,8 +203,8 @@ def build_parser() -> argparse.ArgumentParser:
         ``upscale`` with ``--version`` and one subparser per verb (:data:`_VERB_PARSERS`),
         the chosen verb in ``verb``; usage errors print one line and exit 2.
     """
-    parser = _Parser(prog="upscale", description="Coarsen fine geomodels for flow simulation and "
-                     "check that the coarse grid still flows like the fine one.")
+    parser = _Parser(prog="upscale", description="Turn fine geomodels into coarse simulation grids and measure, "
+                     "with flow solves, how much of the fine model's flow they keep.")
     parser.add_argument("--version", action="version", version=f"upscale {tool_version()}")
     sub = parser.add_subparsers(dest="verb", required=True, parser_class=_Parser)
     for name, help_text, add_options in _VERB_PARSERS:
@@ -243,7 +256,8 @@ def _coarsen(args) -> int:
     if args.workers is not None and args.scheduler:
         raise InputError("give --workers (local processes) or --scheduler (a running cluster), not both")
     options = dict(ratio=args.ratio, edges=dict(args.edges), method=args.method, bc=args.bc, border=args.border,
-                   omega=args.omega, multipliers=args.multipliers, units=args.units)
+                   omega=args.omega, multipliers=args.multipliers, units=args.units,
+                   global_solves=args.global_solves, passes=args.passes)
     plan = _memory_plan(args)
     chunked = args.box is not None or plan.chunked(args.fine, args.method, args.multipliers)
     if chunked:
@@ -301,8 +315,12 @@ def _coarsen_in_memory(fine, options: dict, quiet: bool):
     shape = tuple(fine.sizes[d] for d in ("x", "y", "z"))
     coarse_shape = make_partition(shape, options["ratio"], options["edges"]).shape
     work = int(np.prod(coarse_shape)) if "flow" in options["method"] else 0
-    if options["multipliers"]:
-        work += sum(int(np.prod(coarse_shape)) * (n - 1) // n for n in coarse_shape)
+    faces = sum(int(np.prod(coarse_shape)) * (n - 1) // n for n in coarse_shape)
+    global_stage = options["bc"] == "global" and options["global_solves"] == "coarse"
+    if options["multipliers"] or options["bc"] == "global":
+        work += faces
+    if global_stage:  # at most this many passes over the faces; the bar may end early
+        work += faces * (options["passes"] or 3)
     with progress_bar(work, "local solves", quiet) as update:
         return coarsen(fine, progress=update, **options)
 
@@ -385,7 +403,8 @@ def _check(args) -> int:
     transient = {"drainage": args.drainage, "face": args.face, "column": args.well_column,
                  "compressibility": args.compressibility, "viscosity": args.viscosity,
                  "steps_per_doubling": args.steps_per_doubling}
-    run_check(args.fine, args.coarse, args.report, transient=transient, quiet=args.quiet)
+    run_check(args.fine, args.coarse, args.report, transient=transient, quiet=args.quiet, checks=args.checks,
+              compare=args.compare)
     return 0
 
 

@@ -16,6 +16,15 @@ from ..errors import InputError
 from .block_problems import BATCH_BYTES, BOUNDARY_CONDITIONS, flow_tensors
 from .face_problems import flow_transmissibility, sealed_and_face_flow
 from .grid import AXES, GridArrays
+from .local_global import (
+    GLOBAL_SOLVES,
+    CoarseModel,
+    GlobalOptions,
+    GlobalReport,
+    fine_face_fluxes,
+    iterate,
+    local_face_fluxes,
+)
 from .partition import Partition
 from .static import STATIC_METHODS, block_length, cardwell_parsons, divide_or_zero, static_average
 from .two_point import cell_geometry, half_transmissibility
@@ -55,8 +64,9 @@ def method_label(methods: tuple[str, str, str]) -> str:
 
 @dataclass(frozen=True)
 class Recipe:
-    """What ``coarsen`` computes: methods per axis, local boundary condition and border
-    (fine cells), power exponent, flow-based multipliers, transmissibility units."""
+    """What ``coarsen`` computes: methods per axis, boundary condition and border (fine
+    cells), power exponent, flow-based multipliers, transmissibility units; for the
+    ``global`` condition, the options of the global stage."""
 
     methods: tuple[str, str, str]
     bc: str
@@ -64,6 +74,12 @@ class Recipe:
     omega: float | None
     multipliers: bool
     units: str
+    global_options: GlobalOptions | None = None
+
+    @property
+    def local_bc(self) -> str:
+        """The boundary condition of the block problems: the global stage starts from sealed."""
+        return "sealed" if self.bc == "global" else self.bc
 
     @property
     def flow(self) -> bool:
@@ -83,19 +99,101 @@ class Recipe:
 
 
 def make_recipe(method="flow", bc: str = "sealed", border: int = 0, omega: float | None = None,
-                multipliers: bool = False, units: str = "metric") -> Recipe:
+                multipliers: bool = False, units: str = "metric", global_solves: str = "coarse",
+                passes: int | None = None) -> Recipe:
     """Check ``coarsen``'s options (InputError naming the bad one) and gather them."""
     methods = parse_methods(method)
-    if "flow" in methods and bc not in BOUNDARY_CONDITIONS:
-        raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(BOUNDARY_CONDITIONS)}")
-    if bc in FULL_TENSOR and "flow" in methods and set(methods) != {"flow"}:
-        raise InputError(f"boundary condition '{bc}' gives a full tensor: use method 'flow' on all axes")
+    conditions = BOUNDARY_CONDITIONS + ("global",)
+    if "flow" in methods and bc not in conditions:
+        raise InputError(f"unknown boundary condition '{bc}'; choose from {', '.join(conditions)}")
+    if bc in FULL_TENSOR + ("global",) and "flow" in methods and set(methods) != {"flow"}:
+        raise InputError(f"boundary condition '{bc}' needs method 'flow' on all axes")
+    options = _global_options(global_solves, passes, border) if bc == "global" and "flow" in methods else None
     if "power" in methods and (omega is None or not np.isfinite(omega)):
         raise InputError("method 'power' needs a finite exponent omega (e.g. --omega 0.5)")
     if border < 0 or int(border) != border:
         raise InputError(f"border must be a whole number of fine cells >= 0, got {border}")
     unit_system(units)
-    return Recipe(methods, bc if "flow" in methods else "none", int(border), omega, bool(multipliers), units)
+    return Recipe(methods, bc if "flow" in methods else "none", int(border), omega,
+                  bool(multipliers) or options is not None, units, options)
+
+
+def _global_options(solves: str, passes: int | None, ring: int) -> GlobalOptions:
+    """The options of the global stage, checked."""
+    if solves not in GLOBAL_SOLVES:
+        raise InputError(f"unknown global solves '{solves}'; choose coarse (local-global) or fine (fitted to "
+                         f"fine whole-model flows)")
+    fine = solves == "fine"  # the fine fluxes are fixed: every face is refitted each pass, all flows weighed
+    options = GlobalOptions(solves=solves, ring=int(ring), passes=10 if fine else 3,
+                            weighting="flux" if fine else "largest-drop", adaptive=not fine)
+    if passes is not None:
+        if int(passes) != passes or passes < 1:
+            raise InputError(f"passes must be a whole number >= 1, got {passes}")
+        options.passes = int(passes)
+    return options
+
+
+def global_stage(cells: GridArrays, partition: Partition, variables: dict, recipe: Recipe,
+                 progress=None) -> GlobalReport:
+    """Replace the face values ``tx_flow`` ... of :func:`block_variables` (the whole grid,
+    in memory) by those of the global stage (:mod:`upscale.core.local_global`).
+
+    Parameters
+    ----------
+    cells : GridArrays
+        The fine field.
+    partition : Partition
+        Its coarse blocks.
+    variables : dict
+        :func:`block_variables` of the whole grid, updated in place.
+    recipe : Recipe
+        With ``global_options``.
+    progress : callable, optional
+        Receives the number of faces solved by each pass.
+
+    Returns
+    -------
+    GlobalReport
+        Passes, faces solved, fallbacks and the rate change of each pass.
+    """
+    options = recipe.global_options
+    _, constant, to_length = unit_system(recipe.units)
+    scale = constant * to_length
+    local = [variables[f"t{name}_flow"] / scale for name in AXES]
+    dx = np.add.reduceat(cells.dx, partition.edges[0][:-1])
+    dy = np.add.reduceat(cells.dy, partition.edges[1][:-1])
+    model = CoarseModel(dx, dy, variables["dz"], local, [variables[f"half_{name}"] / scale for name in AXES])
+    if options.solves == "fine":
+        fluxes = fine_face_fluxes(cells, partition)
+
+        def measure(pressures, solved):
+            return fluxes
+    else:
+        def measure(pressures, solved):
+            measured = local_face_fluxes(cells, partition, pressures, ring=options.ring, solved=solved)
+            if progress is not None:
+                progress(int(sum(q[0].size if s is None else s.sum() for q, s in zip(measured.faces,
+                                                                                     solved or [None] * 3))))
+            return measured
+    model, report = iterate(model, local, measure, options)
+    _store_global_model(variables, model, scale)
+    return report
+
+
+def _store_global_model(variables: dict, model: CoarseModel, scale: float) -> None:
+    """Write the global stage's faces and boundary half-cell transmissibilities back, the
+    permeability of the blocks whose half-cell value changed following it (k = T l^2 / 2V,
+    net horizontally)."""
+    volume, lengths = cell_geometry(model.dx, model.dy, model.dz)
+    ntg = variables["ntg"]
+    for axis, name in enumerate(AXES):
+        variables[f"t{name}_flow"] = scale * model.faces[axis]
+        old = variables[f"half_{name}"] / scale
+        changed = model.halves[axis] != old
+        k = divide_or_zero(model.halves[axis] * lengths[axis] ** 2, 2.0 * volume)
+        net = divide_or_zero(k, ntg) if axis < 2 else k
+        variables[f"k{name}"] = np.where(changed, net, variables[f"k{name}"])
+        variables[f"half_{name}"] = np.where(changed, scale * model.halves[axis], variables[f"half_{name}"])
 
 
 def block_variables(cells: GridArrays, partition: Partition, blocks: tuple[slice, slice, slice],
@@ -152,10 +250,10 @@ def _local_solves(cells: GridArrays, partition: Partition, recipe: Recipe, solve
     residuals) per axis, or None) the recipe asks for; with the sealed condition and
     multipliers both in one pass, sharing their elimination."""
     flow = faces = None
-    if recipe.flow and recipe.multipliers and recipe.bc == "sealed":
+    if recipe.flow and recipe.multipliers and recipe.local_bc == "sealed":
         flow, *faces = sealed_and_face_flow(cells, partition, units=recipe.units, **solves)
     elif recipe.flow:
-        flow = flow_tensors(cells, partition, bc=recipe.bc, **solves)
+        flow = flow_tensors(cells, partition, bc=recipe.local_bc, **solves)
     if recipe.multipliers and faces is None:
         faces = flow_transmissibility(cells, partition, units=recipe.units, **solves)
     return flow, faces

@@ -7,10 +7,12 @@ from __future__ import annotations
 import numpy as np
 import xarray as xr
 
-from ..core.grid import AXES
+from ..core.grid import AXES, GridArrays
 from ..core.partition import Partition, partition_from_ranges
+from ..core.two_point import cell_geometry, half_transmissibility
 from ..core.units import TRANSMISSIBILITY_UNITS
 from ..errors import InputError
+from .schema import arrays
 
 
 def coarse_partition(coarse: xr.Dataset, fine_shape=None, required: bool = True) -> Partition | None:
@@ -147,3 +149,25 @@ def coarse_faces(coarse: xr.Dataset, shape) -> list[np.ndarray]:
                              f"negative on {int(bad.sum())} face(s), first at {tuple(np.argwhere(bad)[0])}")
         faces.append(values)
     return faces
+
+
+def coarse_two_point(coarse: xr.Dataset) -> tuple[GridArrays, list[np.ndarray], list[np.ndarray]]:
+    """A validated coarse grid as a two-point model, in mD*m.
+
+    Returns
+    -------
+    cells : GridArrays
+        The coarse cells.
+    faces : list of ndarray
+        Per axis the file's face transmissibilities times their multipliers, divided by
+        the unit constant (:func:`transmissibility_constant`).
+    halves : list of ndarray
+        Per axis the half-cell transmissibilities 2 k V / l^2 of the cells' effective
+        permeability (kx*ntg, ky*ntg, kz; 0 in inactive cells); off-diagonal terms unused.
+    """
+    cells = arrays(coarse)
+    constant = transmissibility_constant(coarse)
+    faces = [t / constant for t in coarse_faces(coarse, cells.shape)]
+    volume, lengths = cell_geometry(cells.dx, cells.dy, cells.dz)
+    k = cells.flow_permeability()
+    return cells, faces, [half_transmissibility(k[a], volume, lengths[a]) for a in range(3)]

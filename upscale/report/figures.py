@@ -142,6 +142,24 @@ def whole_model_bars(global_check: dict) -> Figure:
     return figure
 
 
+def diagonal_bars(diagonal: dict) -> Figure:
+    """Relative error of each diagonal flow, coarse against fine, beside its floor."""
+    figure = Figure(figsize=(7.5, 4), layout="constrained")
+    ax = figure.subplots()
+    names = list(diagonal)
+    error = [100 * (diagonal[n]["relative_error"] or 0.0) for n in names]
+    floor = [100 * (diagonal[n]["floor"] or 0.0) for n in names]
+    x = np.arange(len(names))
+    ax.bar(x - 0.2, error, 0.4, label="coarse against fine")
+    ax.bar(x + 0.2, floor, 0.4, label="floor (homogeneous field, same grids)", color="tab:gray")
+    ax.axhline(0.0, color="black", linewidth=0.8)
+    ax.set_xticks(x, [n.replace("_", " ") for n in names], fontsize="small")
+    ax.set_ylabel("relative error of the rate, %")
+    ax.set_title("diagonal flows, patch to patch")
+    ax.legend(fontsize="small")
+    return figure
+
+
 def layer_flow_shares(shares: dict) -> Figure:
     """Share of the total flow carried by each coarse layer, fine against coarse: one
     panel per flow direction (``metrics["layer_flow_share"]``), layers downward."""

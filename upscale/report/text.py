@@ -75,24 +75,40 @@ def format_summary(summary: dict) -> str:
 
 
 def format_check(metrics: dict) -> str:
-    """A short terminal table of the whole-model check and the transient check."""
-    lines = ["whole-model steady flow (no-flow sides, unit pressure drop):",
-             f"{'axis':<6}{'fine k (mD)':>14}{'coarse k (mD)':>15}{'rel. error':>12}"]
-    for axis in AXES:
-        g = metrics["global"][axis]
-        error = "-" if g["relative_error"] is None else f"{g['relative_error']:+.2%}"
-        fine = "-" if g["fine_k"] is None else f"{g['fine_k']:.4g}"
-        coarse = "-" if g["coarse_k"] is None else f"{g['coarse_k']:.4g}"
-        lines.append(f"{axis:<6}{fine:>14}{coarse:>15}{error:>12}")
-    transient = metrics.get("transient") or {}
-    final = transient.get("final_cumulative_relative_error")
+    """A short terminal table of the checks that ran: whole-model steady flow, diagonal
+    flows beside their floors, the transient check, pore volumes, what was left out."""
+    lines = []
+    if "global" in metrics:
+        lines += ["whole-model steady flow (no-flow sides, unit pressure drop):",
+                  f"{'axis':<6}{'fine k (mD)':>14}{'coarse k (mD)':>15}{'rel. error':>12}"]
+        for axis in AXES:
+            g = metrics["global"][axis]
+            lines.append(f"{axis:<6}{_maybe(g['fine_k'], '.4g'):>14}{_maybe(g['coarse_k'], '.4g'):>15}"
+                         f"{_maybe(g['relative_error'], '+.2%'):>12}")
+    if metrics.get("diagonal"):
+        lines += ["diagonal flows, patch to patch (floor: the same flow on a homogeneous field):",
+                  f"{'flow':<24}{'rel. error':>12}{'floor':>10}{'above floor':>13}"]
+        for name, d in metrics["diagonal"].items():
+            lines.append(f"{name:<24}{_maybe(d['relative_error'], '+.2%'):>12}{_maybe(d['floor'], '+.2%'):>10}"
+                         f"{_maybe(d['above_floor'], '+.2%'):>13}")
+    for label, errors in (metrics.get("comparison") or {}).items():
+        lines.append(f"{label}: " + ", ".join(f"{name} {_maybe(e, '+.1%')}" for name, e in errors.items()))
+    final = (metrics.get("transient") or {}).get("final_cumulative_relative_error")
     if final is not None:
         lines.append(f"transient drainage: relative error of the final cumulative volume {final:+.2%}")
     pv = metrics["pore_volume"]
     if pv["relative_difference"] is not None:
         lines.append(f"pore volume: fine {pv['fine']:.6g} m3, coarse {pv['coarse']:.6g} m3 "
                      f"(relative difference {pv['relative_difference']:.1e})")
+    left_out = (metrics.get("checks") or {}).get("left_out")
+    if left_out:
+        lines.append(f"not run: {', '.join(left_out)}")
     return "\n".join(lines)
+
+
+def _maybe(value, spec: str) -> str:
+    """``value`` formatted, or '-' where it is None."""
+    return "-" if value is None else format(value, spec)
 
 
 def _digits(value, digits: int = 3) -> str:

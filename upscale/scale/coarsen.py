@@ -6,7 +6,8 @@ import xarray as xr
 
 from ..core.grid import AXES
 from ..core.partition import make_partition
-from ..core.upscaling import block_variables, make_recipe
+from ..core.upscaling import block_variables, global_stage, make_recipe
+from ..errors import InputError
 from ..io.coarse_grid import assemble, warn_flagged
 from ..io.schema import arrays
 from ..io.validation import validate
@@ -16,7 +17,8 @@ from .boxes import lazy_block_variables
 def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flow",
             bc: str = "sealed", border: int = 0, omega: float | None = None,
             multipliers: bool = False, units: str = "metric", progress=None,
-            memory: int | None = None, box: tuple[int, int, int] | None = None) -> xr.Dataset:
+            memory: int | None = None, box: tuple[int, int, int] | None = None,
+            global_solves: str = "coarse", passes: int | None = None) -> xr.Dataset:
     """``upscale.coarsen``: the coarse grid of a fine field.
 
     Parameters
@@ -32,9 +34,11 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
         arithmetic, harmonic, geometric, power (with ``omega``) or flow; or one per axis,
         "arithmetic,arithmetic,harmonic" or ``{"x": ..., "y": ..., "z": ...}``.
     bc : str
-        Boundary condition of the local problems for ``flow``: sealed, periodic or linear.
+        Boundary condition of the local problems for ``flow``: sealed, periodic, linear, or
+        global: local-global face transmissibilities (and sealed k), written as multipliers.
     border : int
-        Fine cells of the border ring around each block's local problem.
+        Fine cells of the border ring around each block's local problem (for ``global``,
+        around each face's two blocks).
     omega : float, optional
         The power-average exponent.
     multipliers : bool
@@ -47,6 +51,12 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
         Lazy fields: bytes a process holding one box may use (sizes the boxes).
     box : tuple of int, optional
         Lazy fields: coarse blocks per box along x, y, z instead.
+    global_solves : str
+        For ``bc="global"``: 'coarse', local problems driven by the coarse model's own
+        flows (local-global), or 'fine', face transmissibilities fitted to the fine
+        model's whole-model flows (needs the fine model solved three times).
+    passes : int, optional
+        For ``bc="global"``: the most passes (default 3 for coarse, 10 for fine).
 
     Returns
     -------
@@ -54,8 +64,11 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
         The coarse grid (coarse grid schema: itself a valid field, with face
         transmissibilities, multipliers, fine-index ranges and provenance).
     """
-    recipe = make_recipe(method, bc, border, omega, multipliers, units)
+    recipe = make_recipe(method, bc, border, omega, multipliers, units, global_solves, passes)
     if is_lazy(fine):
+        if recipe.global_options is not None:
+            raise InputError("boundary condition 'global' needs the field in memory: the global stage does not "
+                             "run in boxes yet; open the field without chunks (or give --memory large enough)")
         if "length_units_in" not in fine.attrs:  # not from open_field / validate: check it (one pass)
             fine = validate(fine)
         partition = make_partition(tuple(fine.sizes[d] for d in AXES), ratio=ratio, edges=edges)
@@ -66,9 +79,21 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
     partition = make_partition(cells.shape, ratio=ratio, edges=edges)
     everything = tuple(slice(0, n) for n in partition.shape)
     variables = block_variables(cells, partition, everything, recipe, progress=progress)
+    report = None if recipe.global_options is None else global_stage(cells, partition, variables, recipe, progress)
     coarse = assemble(variables, fine, partition, recipe)
+    if report is not None:
+        coarse.attrs.update(global_attributes(recipe.global_options, report))
     warn_flagged(coarse)
     return coarse
+
+
+def global_attributes(options, report) -> dict:
+    """The coarse file's record of the global stage: its options and what each pass did."""
+    return {"global_solves": options.solves, "global_ring": options.ring if options.solves == "coarse" else 0,
+            "global_weighting": options.weighting, "global_passes": report.passes,
+            "global_faces_solved": " ".join(map(str, report.faces_solved)),
+            "global_faces_kept_local": " ".join(str(sum(f)) for f in report.fallback),
+            "global_rate_change": " ".join(f"{c:.3g}" for c in report.rate_change)}
 
 
 def is_lazy(ds: xr.Dataset) -> bool:
