@@ -647,14 +647,14 @@ class LocalProblem:
         h = _take(self.couplings.half[d], d, 0)
         return (h * (1.0 - _take(p, d, 0))).reshape(self.domain.count, -1).sum(axis=1)
 
-    def face_flux(self, p: np.ndarray, target: tuple[slice, slice, slice], d: int) -> np.ndarray:
+    def face_flux(self, p: np.ndarray, target: tuple[slice, slice, slice], d: int, rows=slice(None)) -> np.ndarray:
         """Rate (nb,) through the face after ``target`` along d: the fine fluxes from its last
         layer to the next over ``target``'s own cross-section (cells of a border ring around
-        it excluded)."""
+        it excluded); ``p`` holds the domains ``rows`` of the batch."""
         last = target[d].stop - 1
         left = (slice(None),) + tuple(slice(last, last + 1) if a == d else target[a] for a in range(3))
         right = (slice(None),) + tuple(slice(last + 1, last + 2) if a == d else target[a] for a in range(3))
-        q = self.couplings.inner[d][left] * (p[left] - p[right])
+        q = self.couplings.inner[d][rows][left] * (p[left] - p[right])
         return q.reshape(q.shape[0], -1).sum(axis=1)
 
     def connected_through(self, touch: np.ndarray, d: int) -> np.ndarray:

@@ -69,7 +69,7 @@ class CoarseModel:
     def with_values(self, faces: list, halves: list) -> "CoarseModel":
         return CoarseModel(self.dx, self.dy, self.dz, faces, halves)
 
-    def axis_flows(self, tolerance: float = 1e-12) -> tuple[list[np.ndarray], np.ndarray]:
+    def axis_flows(self, tolerance: float = 1e-10) -> tuple[list[np.ndarray], np.ndarray]:
         """Pressures (NX, NY, NZ) of the unit-drop flows along x, y, z (0 where a cell
         reaches neither constant-pressure face) and their rates (3,), mD*m."""
         pressures, rates = [], []
@@ -356,28 +356,38 @@ class PressureField:
         return cls(tuple(nodes), values)
 
 
-def interpolate(field_: PressureField, resistance: list[np.ndarray], points: np.ndarray,
-                cells: np.ndarray) -> np.ndarray:
-    """Coarse pressure at ``points`` (m, 3) in fine index units, weighted along each axis by
-    the fine resistance between the two nearest nodes on the fine line of ``cells``
-    (m, 3, fine cell indices); linear in the index where that line has no resistance."""
+def interpolation_weights(nodes: tuple, resistance: list[np.ndarray], points: np.ndarray,
+                          cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Weights of a coarse pressure field at ``points`` (m, 3), fine index units: the flat
+    indices (8, m) of the eight surrounding nodes in the node grid (``nodes`` per axis) and
+    their weights (8, m). Along each axis the weight is the share of the fine resistance
+    between the two nearest nodes on the fine line of ``cells`` (m, 3, fine cell indices),
+    linear in the index where that line has no resistance."""
     lower, weights = [], []
     for axis in range(3):
-        nodes, s = field_.nodes[axis], points[:, axis]
-        lo = np.clip(np.searchsorted(nodes, s, side="right") - 1, 0, len(nodes) - 2)
-        x0, x1 = nodes[lo], nodes[lo + 1]
+        s = points[:, axis]
+        lo = np.clip(np.searchsorted(nodes[axis], s, side="right") - 1, 0, len(nodes[axis]) - 2)
+        x0, x1 = nodes[axis][lo], nodes[axis][lo + 1]
         r0, r, r1 = (_resistance_at(resistance[axis], axis, x, cells) for x in (x0, s, x1))
         span = r1 - r0
-        linear = (s - x0) / (x1 - x0)
-        t = np.where(span > 0, (r - r0) / np.where(span > 0, span, 1.0), linear)
+        t = np.where(span > 0, (r - r0) / np.where(span > 0, span, 1.0), (s - x0) / (x1 - x0))
         lower.append(lo)
         weights.append(np.clip(t, 0.0, 1.0))
-    out = np.zeros(points.shape[0])
+    grid = tuple(len(n) for n in nodes)
+    index, weight = np.empty((8, points.shape[0]), dtype=np.int64), np.empty((8, points.shape[0]))
     for corner in range(8):
         bits = [(corner >> axis) & 1 for axis in range(3)]
-        weight = np.prod([weights[a] if bits[a] else 1.0 - weights[a] for a in range(3)], axis=0)
-        out += weight * field_.values[tuple(lower[a] + bits[a] for a in range(3))]
-    return out
+        weight[corner] = np.prod([weights[a] if bits[a] else 1.0 - weights[a] for a in range(3)], axis=0)
+        index[corner] = np.ravel_multi_index(tuple(lower[a] + bits[a] for a in range(3)), grid)
+    return index, weight
+
+
+def interpolate(field_: PressureField, resistance: list[np.ndarray], points: np.ndarray,
+                cells: np.ndarray) -> np.ndarray:
+    """Coarse pressure at ``points`` (m, 3) in fine index units, resistance-weighted
+    (:func:`interpolation_weights`)."""
+    index, weight = interpolation_weights(field_.nodes, resistance, points, cells)
+    return (weight * field_.values.ravel()[index]).sum(axis=0)
 
 
 def _resistance_at(cumulative: np.ndarray, axis: int, position: np.ndarray, cells: np.ndarray) -> np.ndarray:
@@ -392,37 +402,57 @@ def _resistance_at(cumulative: np.ndarray, axis: int, position: np.ndarray, cell
     return r0 + fraction * (cumulative[tuple(index)] - r0)
 
 
+class FaceRegions:
+    """The local problems of local-global upscaling, built once and solved every pass.
+
+    For every interior coarse face: its two blocks plus ``ring`` fine cells (clipped at the
+    model edge), the three flows' matrices (Dirichlet halves on the outer boundary inside
+    the model and on the flow's own model faces, no flow on the other model faces) and the
+    interpolation weights of the boundary pressures; a pass only builds the right-hand
+    sides from the coarse pressures and solves.
+    """
+
+    def __init__(self, cells: GridArrays, partition: Partition, ring: int = 0, budget: int = BATCH_BYTES):
+        self.partition = partition
+        resistance = resistance_lines(cells)
+        permeability = cells.flow_permeability()
+        self.nodes = PressureField.of(np.zeros(partition.shape), partition, 0).nodes
+        self.batches = []
+        for axis in range(3):
+            if partition.shape[axis] < 2:
+                continue
+            extend = tuple(int(a == axis) for a in range(3))
+            for batch, domain in local_domains(cells, partition, ring, extend, budget, permeability=permeability):
+                self.batches.append(_RegionBatch(axis, batch, domain, partition.fine_shape, self.nodes, resistance))
+
+    def measure(self, pressures: list[np.ndarray], solved=None) -> Measured:
+        """The fine fluxes under the coarse ``pressures`` of the three axis flows, for the
+        faces in ``solved`` (per-axis masks; None: all; the others 0)."""
+        fields = [PressureField.of(p, self.partition, flow).values.ravel() for flow, p in enumerate(pressures)]
+        shape = self.partition.shape
+        faces = [np.zeros((3,) + tuple(n - int(a == axis) for a, n in enumerate(shape))) for axis in range(3)]
+        low = [np.zeros(tuple(1 if a == axis else n for a, n in enumerate(shape))) if shape[axis] > 1 else None
+               for axis in range(3)]
+        high = [None if edge is None else edge.copy() for edge in low]
+        for region in self.batches:
+            axis = region.axis
+            keep = np.ones(len(region.blocks), dtype=bool) if solved is None else solved[axis][tuple(region.blocks.T)]
+            if not keep.any():
+                continue
+            inner, (q_low, q_high) = region.fluxes(fields, keep)
+            blocks = region.blocks[keep]
+            faces[axis][(slice(None),) + tuple(blocks.T)] = inner.T
+            _place(low[axis], blocks, axis, blocks[:, axis] == 0, q_low)
+            _place(high[axis], blocks, axis, blocks[:, axis] == shape[axis] - 2, q_high)
+        return Measured(faces, low, high)
+
+
 def local_face_fluxes(cells: GridArrays, partition: Partition, pressures: list[np.ndarray], ring: int = 0,
                       solved=None, budget: int = BATCH_BYTES) -> Measured:
     """The fine fluxes (mD*m) of local problems driven by the coarse ``pressures`` of the
-    three axis flows (see the module notes), through the interior coarse faces and, for the
-    regions at the model faces, through the model faces; 0 on faces not in ``solved``
-    (per-axis masks; None: all)."""
-    fields = [PressureField.of(p, partition, flow) for flow, p in enumerate(pressures)]
-    resistance = resistance_lines(cells)
-    permeability = cells.flow_permeability()
-    faces, low, high = [], [], []
-    for axis in range(3):
-        shape = tuple(n - int(a == axis) for a, n in enumerate(partition.shape))
-        edge = tuple(1 if a == axis else n for a, n in enumerate(partition.shape))
-        q, q_low, q_high = np.zeros((3,) + shape), np.zeros(edge), np.zeros(edge)
-        if shape[axis] > 0:
-            extend = tuple(int(a == axis) for a in range(3))
-            for batch, domain in local_domains(cells, partition, ring, extend, budget, permeability=permeability):
-                blocks = np.stack([g.ravel() for g in np.meshgrid(*batch.blocks, indexing="ij")], axis=1)
-                keep = np.ones(len(blocks), dtype=bool) if solved is None else solved[axis][tuple(blocks.T)]
-                if not keep.any():
-                    continue
-                region = _Regions(batch, domain, keep, partition.fine_shape)
-                inner, ends = region.fluxes(axis, fields, resistance)
-                blocks = blocks[keep]
-                q[(slice(None),) + tuple(blocks.T)] = inner.T
-                _place(q_low, blocks, axis, blocks[:, axis] == 0, ends[0])
-                _place(q_high, blocks, axis, blocks[:, axis] == shape[axis] - 1, ends[1])
-        faces.append(q)
-        low.append(q_low if shape[axis] > 0 else None)
-        high.append(q_high if shape[axis] > 0 else None)
-    return Measured(faces, low, high)
+    three axis flows (see the module notes and :class:`FaceRegions`), through the interior
+    coarse faces and, for the regions at the model faces, through the model faces."""
+    return FaceRegions(cells, partition, ring, budget).measure(pressures, solved)
 
 
 def _place(edge: np.ndarray, blocks: np.ndarray, axis: int, on_edge: np.ndarray, values: np.ndarray) -> None:
@@ -432,99 +462,120 @@ def _place(edge: np.ndarray, blocks: np.ndarray, axis: int, on_edge: np.ndarray,
     edge[tuple(index)] = values[on_edge]
 
 
-class _Regions:
-    """A batch of face regions (two blocks and their ring), kept to the selected ones."""
+class _RegionBatch:
+    """One batch of face regions along ``axis``: the local problem, per flow its grounded
+    diagonal and the Dirichlet data of its outer faces, the interpolation weights."""
 
-    def __init__(self, batch, domain, keep: np.ndarray, fine_shape):
-        starts = np.stack([g.ravel() for g in np.meshgrid(*batch.starts, indexing="ij")], axis=1)
-        if not keep.all():
-            domain = type(domain)(k=tuple(k[keep] for k in domain.k),
-                                  lengths=tuple(np.ascontiguousarray(v[keep]) for v in domain.lengths),
-                                  target=domain.target)
-        self.batch, self.domain, self.starts, self.fine_shape = batch, domain, starts[keep], fine_shape
+    def __init__(self, axis: int, batch, domain, fine_shape, nodes, resistance):
+        self.axis, self.batch, self.domain = axis, batch, domain
+        self.blocks = np.stack([g.ravel() for g in np.meshgrid(*batch.blocks, indexing="ij")], axis=1)
+        self.starts = np.stack([g.ravel() for g in np.meshgrid(*batch.starts, indexing="ij")], axis=1)
+        self.problem = LocalProblem(domain, periodic=False, slowest=axis)
+        self.sides = [self._side(a, end, fine_shape, nodes, resistance) for a in range(3) for end in (0, 1)]
+        self.diagonals = [self._diagonal(flow) for flow in range(3)]
+        d = self.diagonals
+        self.same = np.all(d[1] == d[0], axis=1) & np.all(d[2] == d[0], axis=1)
 
-    def fluxes(self, axis: int, fields: list[PressureField], resistance) -> tuple[np.ndarray, tuple]:
-        """(regions, flows) fine flux through the face between the two blocks; and of the
-        flow along ``axis``, the fluxes (regions,) through the region's two ends (into it at
-        the low end, out at the high end) over the blocks' cross-section."""
-        problem = LocalProblem(self.domain, periodic=False, slowest=axis)
-        systems = [self._system(problem, flow, fields[flow], resistance) for flow in range(3)]
-        p = self._solve(problem, systems)
-        inner = np.stack([problem.face_flux(p[:, flow], self.batch.target, axis) for flow in range(3)], axis=1)
-        return inner, self._end_fluxes(problem, p[:, axis], axis)
+    def _side(self, a: int, end: int, fine_shape, nodes, resistance) -> dict:
+        """The outer face normal to ``a`` at ``end``: its layer, half-cell transmissibilities,
+        whether it lies on the model face, and the interpolation weights of its face centres."""
+        nb, shape = self.domain.count, self.domain.shape
+        at_edge = self.starts[:, a] == 0 if end == 0 else self.starts[:, a] + shape[a] == fine_shape[a]
+        index = 0 if end == 0 else shape[a] - 1
+        points, cells = _face_centres(self.starts, shape, a, end)
+        weights = interpolation_weights(nodes, resistance, points, cells)
+        return {"axis": a, "end": end, "layer": index, "at_edge": at_edge,
+                "half": _layer(self.problem.couplings.half[a], a, index), "weights": weights,
+                "face": (nb,) + tuple(1 if b == a else shape[b] for b in range(3))}
 
-    def _end_fluxes(self, problem: LocalProblem, p: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray]:
-        """Fluxes through the region's two ends along ``axis`` at boundary pressures 1 and 0,
-        over the blocks' cross-section (only meaningful where an end is on the model face)."""
-        target, n = self.batch.target, self.domain.shape[axis]
-        half = problem.couplings.half[axis]
+    def _dirichlet(self, side: dict, flow: int) -> np.ndarray:
+        """Per region: is this side a Dirichlet face for ``flow``? (No flow through the
+        model's own sides, the flow's constant pressure on its faces.)"""
+        return np.ones(self.domain.count, dtype=bool) if side["axis"] == flow else ~side["at_edge"]
+
+    def _diagonal(self, flow: int) -> np.ndarray:
+        """The grounded diagonal (nb, n) of ``flow``'s system."""
+        problem, nb = self.problem, self.domain.count
+        diag = problem.coupling_sum.copy()
+        touched = np.zeros(problem.components.count, dtype=bool)
+        labels = problem.components.labels.reshape(diag.shape)
+        for side in self.sides:
+            h = side["half"] * self._dirichlet(side, flow).reshape(nb, 1, 1, 1)
+            _layer(diag, side["axis"], side["layer"])[...] += h
+            touched[_layer(labels, side["axis"], side["layer"])[h > 0]] = True
+        flat = diag.reshape(nb, -1)
+        _ground(flat, problem.components, touched)
+        return flat
+
+    def _rhs(self, flow: int, field_values: np.ndarray) -> np.ndarray:
+        """The right-hand side (nb, n) of ``flow``'s system for the interpolated pressures."""
+        nb = self.domain.count
+        rhs = np.zeros((nb,) + self.domain.shape)
+        for side in self.sides:
+            index, weight = side["weights"]
+            values = (weight * field_values[index]).sum(axis=0).reshape(side["face"])
+            if side["axis"] == flow:
+                values = np.where(side["at_edge"].reshape(nb, 1, 1, 1), 1.0 - side["end"], values)
+            h = side["half"] * self._dirichlet(side, flow).reshape(nb, 1, 1, 1)
+            _layer(rhs, side["axis"], side["layer"])[...] += h * values
+        return rhs.reshape(nb, -1)
+
+    def fluxes(self, fields: list[np.ndarray], keep: np.ndarray) -> tuple[np.ndarray, tuple]:
+        """(kept regions, flows) fine flux through the face between the two blocks; and of
+        the flow along the face axis, the fluxes (kept regions,) through the region's two
+        ends (into it at the low end, out at the high end) over the blocks' cross-section."""
+        p = self._solve([self._rhs(flow, fields[flow]) for flow in range(3)], keep)
+        target = self.batch.target
+        inner = np.stack([self.problem.face_flux(p[:, flow], target, self.axis, rows=keep) for flow in range(3)],
+                         axis=1)
+        return inner, self._end_fluxes(p[:, self.axis], keep)
+
+    def _solve(self, rhs: list[np.ndarray], keep: np.ndarray) -> np.ndarray:
+        """Pressures (kept, flows, sx, sy, sz): one factorisation for the three flows where
+        their diagonals agree (regions inside the model), one per flow elsewhere."""
+        problem = self.problem
+        x = np.empty((int(keep.sum()), 3, problem.n))
+        solve = dict(first=problem.first, second=problem.second, position=problem.pos, width=problem.width)
+        together, apart = keep & self.same, keep & ~self.same
+        where_together, where_apart = together[keep], apart[keep]
+        if together.any():
+            x[where_together] = solve_batch(values=problem.values[together], diagonal=self.diagonals[0][together],
+                                            rhs=np.stack([r[together] for r in rhs], axis=1), **solve)[0]
+        for flow in range(3) if apart.any() else ():
+            x[where_apart, flow] = solve_batch(values=problem.values[apart], diagonal=self.diagonals[flow][apart],
+                                               rhs=rhs[flow][apart][:, None], **solve)[0][:, 0]
+        return x.reshape((x.shape[0], 3) + self.domain.shape)
+
+    def _end_fluxes(self, p: np.ndarray, keep: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Fluxes through the region's two ends along the face axis at boundary pressures 1
+        and 0, over the blocks' cross-section (meaningful where an end is on the model face)."""
+        axis, target, n = self.axis, self.batch.target, self.domain.shape[self.axis]
+        half = self.problem.couplings.half[axis][keep]
         low = (slice(None),) + tuple(slice(0, 1) if a == axis else target[a] for a in range(3))
         high = (slice(None),) + tuple(slice(n - 1, n) if a == axis else target[a] for a in range(3))
         q_low = (half[low] * (1.0 - p[low])).reshape(p.shape[0], -1).sum(axis=1)
         q_high = (half[high] * p[high]).reshape(p.shape[0], -1).sum(axis=1)
         return q_low, q_high
 
-    def _system(self, problem: LocalProblem, flow: int, field_: PressureField, resistance):
-        """Diagonal and right-hand side (nb, n) of one flow's problem."""
-        domain, nb = self.domain, self.domain.count
-        diag = problem.coupling_sum.copy()
-        rhs = np.zeros(diag.shape)
-        touched = np.zeros(problem.components.count, dtype=bool)
-        labels = problem.components.labels.reshape(diag.shape)
-        for a in range(3):
-            for end in (0, 1):
-                at_edge = self.starts[:, a] == 0 if end == 0 else self.starts[:, a] + domain.shape[a] == self.fine_shape[a]
-                dirichlet = np.ones(nb, dtype=bool) if a == flow else ~at_edge
-                if not dirichlet.any():
-                    continue
-                index = 0 if end == 0 else domain.shape[a] - 1
-                h = _layer(problem.couplings.half[a], a, index) * dirichlet.reshape(nb, 1, 1, 1)
-                values = self._boundary_values(a, end, field_, resistance)
-                if a == flow:
-                    values = np.where(at_edge.reshape(nb, 1, 1, 1), 1.0 - end, values)
-                _layer(diag, a, index)[...] += h
-                _layer(rhs, a, index)[...] += h * values
-                touched[_layer(labels, a, index)[h > 0]] = True
-        flat = diag.reshape(nb, -1)
-        _ground(flat, problem.components, touched)
-        return flat, rhs.reshape(nb, -1)
 
-    def _boundary_values(self, a: int, end: int, field_: PressureField, resistance) -> np.ndarray:
-        """Interpolated coarse pressure on the region's outer face normal to ``a`` at ``end``
-        (nb, face shape), at the fine face centres."""
-        nb, shape = self.domain.count, self.domain.shape
-        face = (nb,) + tuple(1 if b == a else shape[b] for b in range(3))
-        points, cells = [], []
-        for b in range(3):
-            view = [nb, 1, 1, 1]
-            if b == a:
-                position = (self.starts[:, a] + (0 if end == 0 else shape[a])).astype(float)
-                cell = self.starts[:, a] + (0 if end == 0 else shape[a] - 1)
-                position, cell = position.reshape(view), cell.reshape(view)
-            else:
-                view[b + 1] = shape[b]
-                cell = (self.starts[:, b][:, None] + np.arange(shape[b])[None, :]).reshape(view)
-                position = cell + 0.5
-            points.append(np.broadcast_to(position, face).ravel())
-            cells.append(np.broadcast_to(cell, face).ravel())
-        return interpolate(field_, resistance, np.stack(points, axis=1), np.stack(cells, axis=1)).reshape(face)
-
-    def _solve(self, problem: LocalProblem, systems) -> np.ndarray:
-        """Pressures (nb, flows, sx, sy, sz): one factorisation for the three flows where
-        their diagonals agree (regions inside the model), one per flow elsewhere."""
-        nb = self.domain.count
-        diagonals = [d for d, _ in systems]
-        same = np.all(diagonals[1] == diagonals[0], axis=1) & np.all(diagonals[2] == diagonals[0], axis=1)
-        x = np.empty((nb, 3, problem.n))
-        solve = dict(first=problem.first, second=problem.second, position=problem.pos, width=problem.width)
-        if same.any():
-            rhs = np.stack([r[same] for _, r in systems], axis=1)
-            x[same] = solve_batch(values=problem.values[same], diagonal=diagonals[0][same], rhs=rhs, **solve)[0]
-        for flow, (diagonal, rhs) in enumerate(systems):
-            if (~same).any():
-                x[~same, flow] = solve_batch(values=problem.values[~same], diagonal=diagonal[~same],
-                                             rhs=rhs[~same][:, None], **solve)[0][:, 0]
-        return x.reshape((nb, 3) + self.domain.shape)
+def _face_centres(starts: np.ndarray, shape, a: int, end: int) -> tuple[np.ndarray, np.ndarray]:
+    """The centres (m, 3) of the fine faces of each region's outer face normal to ``a`` at
+    ``end``, in fine index units, and the fine cells (m, 3) inside them."""
+    nb = starts.shape[0]
+    face = (nb,) + tuple(1 if b == a else shape[b] for b in range(3))
+    points, cells = [], []
+    for b in range(3):
+        view = [nb, 1, 1, 1]
+        if b == a:
+            position = (starts[:, a] + (0 if end == 0 else shape[a])).astype(float).reshape(view)
+            cell = (starts[:, a] + (0 if end == 0 else shape[a] - 1)).reshape(view)
+        else:
+            view[b + 1] = shape[b]
+            cell = (starts[:, b][:, None] + np.arange(shape[b])[None, :]).reshape(view)
+            position = cell + 0.5
+        points.append(np.broadcast_to(position, face).ravel())
+        cells.append(np.broadcast_to(cell, face).ravel())
+    return np.stack(points, axis=1), np.stack(cells, axis=1)
 
 
 def _layer(a: np.ndarray, axis: int, index: int) -> np.ndarray:

@@ -19,11 +19,11 @@ from .grid import AXES, GridArrays
 from .local_global import (
     GLOBAL_SOLVES,
     CoarseModel,
+    FaceRegions,
     GlobalOptions,
     GlobalReport,
     fine_face_fluxes,
     iterate,
-    local_face_fluxes,
 )
 from .partition import Partition
 from .static import STATIC_METHODS, block_length, cardwell_parsons, divide_or_zero, static_average
@@ -169,8 +169,10 @@ def global_stage(cells: GridArrays, partition: Partition, variables: dict, recip
         def measure(pressures, solved):
             return fluxes
     else:
+        regions = FaceRegions(cells, partition, options.ring)
+
         def measure(pressures, solved):
-            measured = local_face_fluxes(cells, partition, pressures, ring=options.ring, solved=solved)
+            measured = regions.measure(pressures, solved)
             if progress is not None:
                 progress(int(sum(q[0].size if s is None else s.sum() for q, s in zip(measured.faces,
                                                                                      solved or [None] * 3))))
