@@ -164,9 +164,24 @@ def test_global_transmissibilities_are_positive_and_do_not_depend_on_which_block
     assert rates[-1] < rates[0] or rates[-1] < 2e-3  # the passes settle
 
 
-def test_global_stage_refuses_a_lazy_field_by_name(tmp_path):
+@pytest.mark.parametrize("box", [(1, 2, 1), (2, 1, 2)])
+def test_local_global_in_boxes_equals_in_memory(tmp_path, box):
+    # The same numbers whatever the boxes: each box solves the faces after its own blocks
+    # from its window (the box and two blocks around it), the coarse passes are global.
+    k = 30.0 * lognormal((12, 10, 6), 1.5, seed=9)
+    path = tmp_path / "f.nc"
+    upscale.write(field(k, 0.5 * k, 0.1 * k), path)
+    memory = upscale.coarsen(upscale.open_field(path), ratio=(2, 2, 2), bc="global", border=1)
+    lazy = upscale.coarsen(upscale.open_field(path, chunks={"x": 4}), ratio=(2, 2, 2), bc="global", border=1,
+                           box=box)
+    for name in ("kx", "ky", "kz", "tx_multiplier", "ty_multiplier", "tz_multiplier"):
+        np.testing.assert_allclose(np.asarray(lazy[name].values), memory[name].values, rtol=1e-9, err_msg=name)
+    assert lazy.attrs["global_passes"] == memory.attrs["global_passes"]
+
+
+def test_global_fit_to_fine_flows_refuses_a_lazy_field_by_name(tmp_path):
     path = tmp_path / "f.nc"
     upscale.write(field(np.full((4, 4, 2), 10.0)), path)
     lazy = upscale.open_field(path, chunks={"x": 2})
-    with pytest.raises(upscale.InputError, match="boundary condition 'global' needs the field in memory"):
-        upscale.coarsen(lazy, ratio=(2, 2, 1), bc="global")
+    with pytest.raises(upscale.InputError, match="global solves 'fine' need the fine model in memory"):
+        upscale.coarsen(lazy, ratio=(2, 2, 1), bc="global", global_solves="fine")

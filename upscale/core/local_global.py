@@ -112,6 +112,12 @@ class Measured:
     low: list
     high: list
 
+    def __add__(self, other: "Measured") -> "Measured":
+        """The fluxes of two disjoint sets of faces (e.g. two boxes) together."""
+        both = [None if a is None else a + b for a, b in zip(self.low, other.low)]
+        return Measured([a + b for a, b in zip(self.faces, other.faces)], both,
+                        [None if a is None else a + b for a, b in zip(self.high, other.high)])
+
     def update(self, new: "Measured", solved) -> "Measured":
         """These fluxes with those of ``new`` on the faces in ``solved`` (None: all)."""
         if solved is None:
@@ -357,18 +363,22 @@ class PressureField:
 
 
 def interpolation_weights(nodes: tuple, resistance: list[np.ndarray], points: np.ndarray,
-                          cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+                          cells: np.ndarray, origin=(0, 0, 0)) -> tuple[np.ndarray, np.ndarray]:
     """Weights of a coarse pressure field at ``points`` (m, 3), fine index units: the flat
     indices (8, m) of the eight surrounding nodes in the node grid (``nodes`` per axis) and
     their weights (8, m). Along each axis the weight is the share of the fine resistance
     between the two nearest nodes on the fine line of ``cells`` (m, 3, fine cell indices),
-    linear in the index where that line has no resistance."""
+    linear in the index where that line has no resistance. ``resistance``
+    (:func:`resistance_lines`) may be that of a window of the grid starting at fine index
+    ``origin``."""
+    origin = np.asarray(origin)
+    local = cells - origin
     lower, weights = [], []
     for axis in range(3):
         s = points[:, axis]
         lo = np.clip(np.searchsorted(nodes[axis], s, side="right") - 1, 0, len(nodes[axis]) - 2)
         x0, x1 = nodes[axis][lo], nodes[axis][lo + 1]
-        r0, r, r1 = (_resistance_at(resistance[axis], axis, x, cells) for x in (x0, s, x1))
+        r0, r, r1 = (_resistance_at(resistance[axis], axis, x - origin[axis], local) for x in (x0, s, x1))
         span = r1 - r0
         t = np.where(span > 0, (r - r0) / np.where(span > 0, span, 1.0), (s - x0) / (x1 - x0))
         lower.append(lo)
@@ -402,6 +412,18 @@ def _resistance_at(cumulative: np.ndarray, axis: int, position: np.ndarray, cell
     return r0 + fraction * (cumulative[tuple(index)] - r0)
 
 
+@dataclass(frozen=True)
+class Frame:
+    """Where a window of whole blocks sits in the model: its first fine cell and first
+    block per axis, the model's partition, and the window's blocks (window indices per
+    axis) whose faces after them are to be solved."""
+
+    cells: tuple
+    blocks: tuple
+    model: Partition
+    owned: tuple
+
+
 class FaceRegions:
     """The local problems of local-global upscaling, built once and solved every pass.
 
@@ -409,27 +431,37 @@ class FaceRegions:
     model edge), the three flows' matrices (Dirichlet halves on the outer boundary inside
     the model and on the flow's own model faces, no flow on the other model faces) and the
     interpolation weights of the boundary pressures; a pass only builds the right-hand
-    sides from the coarse pressures and solves.
+    sides from the coarse pressures and solves. With a ``frame``, ``cells`` and
+    ``partition`` are a window of whole blocks of the model (a box and the blocks around
+    it), and only the faces after the frame's owned blocks are built.
     """
 
-    def __init__(self, cells: GridArrays, partition: Partition, ring: int = 0, budget: int = BATCH_BYTES):
-        self.partition = partition
+    def __init__(self, cells: GridArrays, partition: Partition, ring: int = 0, budget: int = BATCH_BYTES,
+                 frame: Frame | None = None):
+        frame = frame or Frame((0, 0, 0), (0, 0, 0), partition, (None, None, None))
+        self.model = frame.model
         resistance = resistance_lines(cells)
         permeability = cells.flow_permeability()
-        self.nodes = PressureField.of(np.zeros(partition.shape), partition, 0).nodes
+        self.nodes = PressureField.of(np.zeros(frame.model.shape), frame.model, 0).nodes
         self.batches = []
         for axis in range(3):
-            if partition.shape[axis] < 2:
+            if frame.model.shape[axis] < 2:
                 continue
             extend = tuple(int(a == axis) for a in range(3))
-            for batch, domain in local_domains(cells, partition, ring, extend, budget, permeability=permeability):
-                self.batches.append(_RegionBatch(axis, batch, domain, partition.fine_shape, self.nodes, resistance))
+            owned = list(frame.owned)
+            if owned[axis] is not None:  # the window's last block has no face after it in the window
+                owned[axis] = np.asarray(owned[axis])[np.asarray(owned[axis]) < partition.shape[axis] - 1]
+                if owned[axis].size == 0:
+                    continue
+            for batch, domain in local_domains(cells, partition, ring, extend, budget, tuple(owned),
+                                               permeability=permeability):
+                self.batches.append(_RegionBatch(axis, batch, domain, frame, self.nodes, resistance))
 
     def measure(self, pressures: list[np.ndarray], solved=None) -> Measured:
-        """The fine fluxes under the coarse ``pressures`` of the three axis flows, for the
-        faces in ``solved`` (per-axis masks; None: all; the others 0)."""
-        fields = [PressureField.of(p, self.partition, flow).values.ravel() for flow, p in enumerate(pressures)]
-        shape = self.partition.shape
+        """The fine fluxes under the coarse ``pressures`` (of the model) of the three axis
+        flows, for the faces in ``solved`` (per-axis masks; None: all; the others 0)."""
+        fields = [PressureField.of(p, self.model, flow).values.ravel() for flow, p in enumerate(pressures)]
+        shape = self.model.shape
         faces = [np.zeros((3,) + tuple(n - int(a == axis) for a, n in enumerate(shape))) for axis in range(3)]
         low = [np.zeros(tuple(1 if a == axis else n for a, n in enumerate(shape))) if shape[axis] > 1 else None
                for axis in range(3)]
@@ -464,14 +496,17 @@ def _place(edge: np.ndarray, blocks: np.ndarray, axis: int, on_edge: np.ndarray,
 
 class _RegionBatch:
     """One batch of face regions along ``axis``: the local problem, per flow its grounded
-    diagonal and the Dirichlet data of its outer faces, the interpolation weights."""
+    diagonal and the Dirichlet data of its outer faces, the interpolation weights; block
+    indices and fine starts are those of the model (:class:`Frame`)."""
 
-    def __init__(self, axis: int, batch, domain, fine_shape, nodes, resistance):
+    def __init__(self, axis: int, batch, domain, frame: Frame, nodes, resistance):
         self.axis, self.batch, self.domain = axis, batch, domain
-        self.blocks = np.stack([g.ravel() for g in np.meshgrid(*batch.blocks, indexing="ij")], axis=1)
-        self.starts = np.stack([g.ravel() for g in np.meshgrid(*batch.starts, indexing="ij")], axis=1)
+        self.blocks = np.stack([g.ravel() for g in np.meshgrid(*batch.blocks, indexing="ij")], axis=1) + frame.blocks
+        self.starts = np.stack([g.ravel() for g in np.meshgrid(*batch.starts, indexing="ij")], axis=1) + frame.cells
+        self.origin = np.asarray(frame.cells)
         self.problem = LocalProblem(domain, periodic=False, slowest=axis)
-        self.sides = [self._side(a, end, fine_shape, nodes, resistance) for a in range(3) for end in (0, 1)]
+        self.sides = [self._side(a, end, frame.model.fine_shape, nodes, resistance) for a in range(3)
+                      for end in (0, 1)]
         self.diagonals = [self._diagonal(flow) for flow in range(3)]
         d = self.diagonals
         self.same = np.all(d[1] == d[0], axis=1) & np.all(d[2] == d[0], axis=1)
@@ -483,7 +518,7 @@ class _RegionBatch:
         at_edge = self.starts[:, a] == 0 if end == 0 else self.starts[:, a] + shape[a] == fine_shape[a]
         index = 0 if end == 0 else shape[a] - 1
         points, cells = _face_centres(self.starts, shape, a, end)
-        weights = interpolation_weights(nodes, resistance, points, cells)
+        weights = interpolation_weights(nodes, resistance, points, cells, self.origin)
         return {"axis": a, "end": end, "layer": index, "at_edge": at_edge,
                 "half": _layer(self.problem.couplings.half[a], a, index), "weights": weights,
                 "face": (nb,) + tuple(1 if b == a else shape[b] for b in range(3))}

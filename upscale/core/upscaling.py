@@ -133,23 +133,28 @@ def _global_options(solves: str, passes: int | None, ring: int) -> GlobalOptions
     return options
 
 
-def global_stage(cells: GridArrays, partition: Partition, variables: dict, recipe: Recipe,
-                 progress=None) -> GlobalReport:
-    """Replace the face values ``tx_flow`` ... of :func:`block_variables` (the whole grid,
-    in memory) by those of the global stage (:mod:`upscale.core.local_global`).
+def global_stage(cells: GridArrays | None, partition: Partition, variables: dict, recipe: Recipe,
+                 progress=None, measure=None, lines=None) -> GlobalReport:
+    """Replace the face values ``tx_flow`` ... of :func:`block_variables` (the whole grid)
+    by those of the global stage (:mod:`upscale.core.local_global`).
 
     Parameters
     ----------
-    cells : GridArrays
-        The fine field.
+    cells : GridArrays or None
+        The fine field in memory; None when ``measure`` is given.
     partition : Partition
-        Its coarse blocks.
+        The coarse blocks.
     variables : dict
-        :func:`block_variables` of the whole grid, updated in place.
+        :func:`block_variables` of the whole grid, numpy arrays, updated in place.
     recipe : Recipe
         With ``global_options``.
     progress : callable, optional
         Receives the number of faces solved by each pass.
+    measure : callable, optional
+        ``measure(pressures, solved) -> Measured`` of the local problems (e.g. in boxes);
+        by default the local problems of ``cells``, or its fine whole-model flows.
+    lines : (ndarray, ndarray), optional
+        The fine dx (nx,) and dy (ny,), m, when ``cells`` is None.
 
     Returns
     -------
@@ -160,26 +165,34 @@ def global_stage(cells: GridArrays, partition: Partition, variables: dict, recip
     _, constant, to_length = unit_system(recipe.units)
     scale = constant * to_length
     local = [variables[f"t{name}_flow"] / scale for name in AXES]
-    dx = np.add.reduceat(cells.dx, partition.edges[0][:-1])
-    dy = np.add.reduceat(cells.dy, partition.edges[1][:-1])
-    model = CoarseModel(dx, dy, variables["dz"], local, [variables[f"half_{name}"] / scale for name in AXES])
-    if options.solves == "fine":
-        fluxes = fine_face_fluxes(cells, partition)
-
-        def measure(pressures, solved):
-            return fluxes
-    else:
-        regions = FaceRegions(cells, partition, options.ring)
-
-        def measure(pressures, solved):
-            measured = regions.measure(pressures, solved)
-            if progress is not None:
-                progress(int(sum(q[0].size if s is None else s.sum() for q, s in zip(measured.faces,
-                                                                                     solved or [None] * 3))))
-            return measured
-    model, report = iterate(model, local, measure, options)
+    dx, dy = (cells.dx, cells.dy) if lines is None else lines
+    model = CoarseModel(np.add.reduceat(dx, partition.edges[0][:-1]), np.add.reduceat(dy, partition.edges[1][:-1]),
+                        variables["dz"], local, [variables[f"half_{name}"] / scale for name in AXES])
+    measure = measure or _in_memory_measure(cells, partition, options)
+    model, report = iterate(model, local, _counted(measure, progress), options)
     _store_global_model(variables, model, scale)
     return report
+
+
+def _in_memory_measure(cells: GridArrays, partition: Partition, options: GlobalOptions):
+    """The measure of the global stage on a field in memory: its face regions (built once),
+    or its fine whole-model flows (solved once)."""
+    if options.solves == "fine":
+        fluxes = fine_face_fluxes(cells, partition)
+        return lambda pressures, solved: fluxes
+    return FaceRegions(cells, partition, options.ring).measure
+
+
+def _counted(measure, progress):
+    """``measure`` reporting the faces it solved to ``progress``."""
+    if progress is None:
+        return measure
+
+    def counted(pressures, solved):
+        measured = measure(pressures, solved)
+        progress(int(sum(q[0].size if s is None else s.sum() for q, s in zip(measured.faces, solved or [None] * 3))))
+        return measured
+    return counted
 
 
 def _store_global_model(variables: dict, model: CoarseModel, scale: float) -> None:

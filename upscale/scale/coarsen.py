@@ -12,6 +12,7 @@ from ..io.coarse_grid import assemble, warn_flagged
 from ..io.schema import arrays
 from ..io.validation import validate
 from .boxes import lazy_block_variables
+from .global_boxes import global_in_boxes
 
 
 def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flow",
@@ -66,12 +67,18 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
     """
     recipe = make_recipe(method, bc, border, omega, multipliers, units, global_solves, passes)
     if is_lazy(fine):
-        if recipe.global_options is not None:
-            raise InputError("boundary condition 'global' needs the field in memory: the global stage does not "
-                             "run in boxes yet; open the field without chunks (or give --memory large enough)")
+        if recipe.global_options is not None and recipe.global_options.solves == "fine":
+            raise InputError("global solves 'fine' need the fine model in memory (three whole-model solves); "
+                             "open the field without chunks, give --memory large enough, or use global solves "
+                             "'coarse' (local-global), which runs in boxes")
         if "length_units_in" not in fine.attrs:  # not from open_field / validate: check it (one pass)
             fine = validate(fine)
         partition = make_partition(tuple(fine.sizes[d] for d in AXES), ratio=ratio, edges=edges)
+        if recipe.global_options is not None:
+            variables, report = global_in_boxes(fine, partition, recipe, memory, box)
+            coarse = assemble(variables, fine, partition, recipe)
+            coarse.attrs.update(global_attributes(recipe.global_options, report))
+            return coarse
         variables = lazy_block_variables(fine, partition, recipe, memory, box)
         return assemble(variables, fine, partition, recipe)
     fine = validate(fine)
