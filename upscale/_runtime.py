@@ -43,15 +43,14 @@ def interrupt_after(until: str = "the file being written is closed"):
 
 def first_call(kernel):
     """Context for a call of a numba ``kernel``: on its first call in this process (when it
-    compiles, or loads from the cache) Ctrl-C is held until the call returns. Measured:
-    an interrupt landing in numba's compiler was lost (the run went on) or ended in a
-    traceback."""
+    compiles, or loads from the cache) Ctrl-C is held until the call returns: an interrupt
+    landing in numba's compiler was lost (the run went on) or ended in a traceback."""
     return nullcontext() if kernel.signatures else interrupt_after("the compiled kernels are ready")
 
 
 #: arrays from this size up get their own memory map, returned to the system when freed
-#: (glibc otherwise raises its threshold after each free and keeps freed arrays in the heap:
-#: measured on the 8 M-cell benchmark, peak 960 MB instead of 750 MB at the same speed)
+#: (glibc otherwise raises its threshold after each free and keeps freed arrays in the heap;
+#: the effect on the 8 M-cell benchmark is in DEVELOPERS.md)
 MMAP_THRESHOLD = 4 * 2 ** 20
 
 

@@ -18,8 +18,8 @@ itself, and iterates:
    at a fixed point the coarse model's face fluxes T dP_i reproduce the fine ones;
 4. repeat until the coarse axis rates change less than a tolerance.
 
-Two choices depart from the plain method, both measured on channelised, draped and
-lognormal fields (DEVELOPERS.md): the coarse pressure difference instead of the blocks'
+Two choices depart from the plain method, both chosen on channelised, draped and
+lognormal fields (DEVELOPERS.md gives the figures): the coarse pressure difference instead of the blocks'
 averaged fine pressures (the averaged fine pressure is not the pressure a two-point
 coarse cell carries), and boundary pressures interpolated between coarse cell centres
 with weights that follow the fine resistance along each axis, sum l / k, rather than the
