@@ -5,6 +5,7 @@ until a critical call returns, the first-call guard of compiled kernels, and mem
 
 from __future__ import annotations
 
+import multiprocessing
 import os
 import signal
 import sys
@@ -77,3 +78,40 @@ def available_memory() -> int:
     except OSError:
         pass
     return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+
+
+_SHARED = None  # (function, data) the forked workers of forked_map read, inherited, not pickled
+
+
+def _run_shared(job):
+    function, data = _SHARED
+    return function(data, job)
+
+
+def _ignore_interrupt() -> None:
+    """Worker initialiser: ignore Ctrl-C, which the parent handles by ending the workers."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def forked_map(function, data, jobs: list, processes: int) -> list:
+    """``[function(data, job) for job in jobs]`` on up to ``processes`` forked workers.
+
+    ``data`` (e.g. a large field) is inherited by the workers, not pickled; jobs and
+    results are. With one process, or where fork is missing, everything runs here. Ctrl-C
+    or a failure in a worker ends them all at once.
+    """
+    global _SHARED
+    if processes <= 1 or len(jobs) <= 1 or "fork" not in multiprocessing.get_all_start_methods():
+        return [function(data, job) for job in jobs]
+    _SHARED = (function, data)
+    pool = multiprocessing.get_context("fork").Pool(min(processes, len(jobs)), initializer=_ignore_interrupt)
+    try:
+        results = pool.map(_run_shared, jobs, chunksize=1)
+        pool.close()
+        return results
+    except BaseException:
+        pool.terminate()
+        raise
+    finally:
+        pool.join()
+        _SHARED = None

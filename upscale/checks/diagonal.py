@@ -16,6 +16,7 @@ import math
 import numpy as np
 import xarray as xr
 
+from .._runtime import forked_map
 from ..core.grid import GridArrays
 from ..core.partition import Partition
 from ..core.patch_flows import PATCH_FLOWS, PatchFlow, patch_masks
@@ -25,6 +26,7 @@ from ..core.two_point import transmissibilities
 from ..io.coarse_file import coarse_partition, coarse_two_point
 from ..io.schema import arrays
 from ..io.validation import validate
+from .steady import axis_processes
 
 
 def patch_rate(face_t, half: np.ndarray, masks, flow: PatchFlow, dx, dy, dz, tolerance: float,
@@ -77,11 +79,25 @@ def _relative(a: float, b: float) -> float | None:
 
 
 def fine_patch_rates(cells: GridArrays, partition: Partition, tolerance: float = 1e-10,
-                     direct_limit: int = DIRECT_LIMIT) -> dict[str, float]:
-    """Rate of every diagonal flow through the fine field, mD*m per unit drop."""
-    half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)
-    return {flow.name: patch_rate(faces, half[flow.axis], patch_masks(partition, flow)[0], flow, cells.dx, cells.dy,
-                                  cells.dz, tolerance, direct_limit) for flow in PATCH_FLOWS}
+                     direct_limit: int = DIRECT_LIMIT, homogeneous: bool = False) -> dict[str, float]:
+    """Rate of every diagonal flow through the fine field (or, ``homogeneous``, through the
+    floor's homogeneous field of the same grid), mD*m per unit drop. A model too large for
+    the direct solver runs its flows on forked worker processes, like the steady check."""
+    if homogeneous:
+        (_, faces, half), _ = _homogeneous_models(cells, partition)
+    else:
+        half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)
+    processes = axis_processes(math.prod(cells.shape), direct_limit)
+    rates = forked_map(_fine_flow, (cells, partition, faces, half, tolerance, direct_limit), list(PATCH_FLOWS),
+                       processes)
+    return {flow.name: rate for flow, rate in zip(PATCH_FLOWS, rates)}
+
+
+def _fine_flow(shared, flow: PatchFlow) -> float:
+    """One diagonal flow through the fine grid (in a forked worker, on the data it inherited)."""
+    cells, partition, faces, half, tolerance, direct_limit = shared
+    return patch_rate(faces, half[flow.axis], patch_masks(partition, flow)[0], flow, cells.dx, cells.dy, cells.dz,
+                      tolerance, direct_limit)
 
 
 def coarse_patch_rates(coarse: xr.Dataset, partition: Partition, tolerance: float = 1e-10) -> dict[str, float]:
@@ -96,15 +112,10 @@ def floors(cells: GridArrays, partition: Partition, tolerance: float = 1e-10,
            direct_limit: int = DIRECT_LIMIT) -> dict[str, float | None]:
     """The floor of every diagonal flow: its relative error coarse against fine on the
     homogeneous field of the same grids."""
-    (_, fine_faces, fine_half), ((dx, dy, dz), faces, half) = _homogeneous_models(cells, partition)
-    out = {}
-    for flow in PATCH_FLOWS:
-        fine_masks, coarse_masks = patch_masks(partition, flow)
-        fine = patch_rate(fine_faces, fine_half[flow.axis], fine_masks, flow, cells.dx, cells.dy, cells.dz,
-                          tolerance, direct_limit)
-        coarse = patch_rate(faces, half[flow.axis], coarse_masks, flow, dx, dy, dz, tolerance)
-        out[flow.name] = _relative(coarse, fine)
-    return out
+    fine = fine_patch_rates(cells, partition, tolerance, direct_limit, homogeneous=True)
+    _, ((dx, dy, dz), faces, half) = _homogeneous_models(cells, partition)
+    return {flow.name: _relative(patch_rate(faces, half[flow.axis], patch_masks(partition, flow)[1], flow, dx, dy,
+                                            dz, tolerance), fine[flow.name]) for flow in PATCH_FLOWS}
 
 
 def compare(fine_rates: dict, coarse_rates: dict, floor: dict) -> dict:

@@ -11,31 +11,16 @@ from __future__ import annotations
 import math
 import multiprocessing
 import os
-import signal
 
 import numpy as np
 import xarray as xr
 
-from .._runtime import available_memory
+from .._runtime import available_memory, forked_map
 from ..core.grid import AXES, GridArrays, axis_index
 from ..core.pressure import DIRECT_LIMIT, boundary_half, fine_model_check, whole_model_permeability
 from ..io.coarse_file import coarse_partition, coarse_two_point
 from ..io.schema import arrays
 from ..io.validation import validate
-
-_SHARED_CELLS: GridArrays | None = None  # the field the forked workers of fine_model_checks read
-
-
-def _fine_axis(args) -> dict:
-    """One axis of the fine check in a forked worker, on the field it inherited."""
-    axis, tolerance, direct_limit = args
-    return fine_model_check(_SHARED_CELLS, axis, tolerance=tolerance, direct_limit=direct_limit)
-
-
-def _ignore_interrupt() -> None:
-    """Worker initialiser: ignore Ctrl-C, which the parent handles by ending the workers."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-
 
 #: peak memory of one axis of the fine check per cell, bytes
 BYTES_PER_CELL = 1300
@@ -114,22 +99,14 @@ def fine_model_checks(cells: GridArrays, tolerance: float = 1e-10, direct_limit:
     list of dict
         The results of :func:`fine_model_check` along x, y, z.
     """
-    global _SHARED_CELLS
     processes = axis_processes(math.prod(cells.shape), direct_limit, workers)
-    if processes == 1:
-        return [fine_model_check(cells, axis, tolerance=tolerance, direct_limit=direct_limit) for axis in range(3)]
-    _SHARED_CELLS = cells  # inherited by the forked workers, not pickled
-    pool = multiprocessing.get_context("fork").Pool(processes, initializer=_ignore_interrupt)
-    try:
-        results = pool.map(_fine_axis, [(axis, tolerance, direct_limit) for axis in range(3)], chunksize=1)
-        pool.close()
-        return results
-    except BaseException:
-        pool.terminate()  # Ctrl-C or a failure: stop the other axes at once
-        raise
-    finally:
-        pool.join()
-        _SHARED_CELLS = None
+    return forked_map(_fine_axis, (cells, tolerance, direct_limit), [0, 1, 2], processes)
+
+
+def _fine_axis(shared, axis: int) -> dict:
+    """One axis of the fine check (in a forked worker, on the field it inherited)."""
+    cells, tolerance, direct_limit = shared
+    return fine_model_check(cells, axis, tolerance=tolerance, direct_limit=direct_limit)
 
 
 def coarse_model_check(coarse: xr.Dataset, axis, tolerance: float = 1e-10,
