@@ -6,11 +6,13 @@ import doctest
 
 import pytest
 
-from upscale.core import partition, static, two_point
+from upscale.core import local_global, partition, patch_flows, static, two_point
+from upscale.io import sector
 
 
-@pytest.mark.parametrize("module", [partition, static, two_point], ids=lambda m: m.__name__)
+@pytest.mark.parametrize("module", [partition, static, two_point, local_global, patch_flows, sector],
+                         ids=lambda m: m.__name__)
 def test_docstring_examples(module):
     result = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE)
-    assert result.attempted >= 2, f"{module.__name__} has lost its examples"
+    assert result.attempted >= 1, f"{module.__name__} has lost its examples"
     assert result.failed == 0

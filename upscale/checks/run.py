@@ -142,6 +142,7 @@ def _file_facts(fine, coarse, cells, partition) -> dict:
                    ("method", "boundary_condition", "border", "partition", "tool_version", "input_sha256",
                     "global_solves", "global_passes")},
     }
+    facts["sector"] = fine.attrs.get("sector")  # a window of the model checked on its own, or None
     facts["coarse"]["shape"] = list(partition.shape)
     facts["coarse"]["input_matches_fine"] = coarse.attrs.get("input_sha256") == fine.attrs.get("source_sha256")
     return facts

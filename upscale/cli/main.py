@@ -33,7 +33,8 @@ EXAMPLES = {
     "demo": "upscale demo            # writes fields/demo*.nc and reports/demo/",
     "check": """\
         upscale check fields/demo.nc fields/demo_coarse.nc --report reports/demo
-        upscale check fields/demo.nc fields/demo_coarse.nc --checks steady,diagonal""",
+        upscale check fields/demo.nc fields/demo_coarse.nc --checks steady,diagonal
+        upscale check big.nc big_coarse.nc --window 0:100,0:100,: --report reports/sector""",
     "layers": "upscale layers fields/demo.nc --target 10",
     "bench": """\
         upscale bench                  # prints timings and ratios side by side
@@ -149,6 +150,10 @@ def _check_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--report", help="folder for index.html and metrics.json")
     p.add_argument("--checks", help="comma-separated subset of steady,diagonal,transient,blocks,layering "
                    "(default all)")
+    p.add_argument("--window", metavar="X0:X1,Y0:Y1,Z0:Z1", help="check only this sector (fine indices, "
+                   "half-open, on whole coarse blocks; an empty bound is the grid's edge), as a model of its own")
+    p.add_argument("--memory", metavar="SIZE", help="memory budget, e.g. 2GB (default: half the memory "
+                   "available); a whole model that needs more is refused with a hint to use --window")
     p.add_argument("--compare", nargs="+", default=[], metavar="OTHER.nc",
                    help="other coarse grids of the same field and blocks: their steady and diagonal errors "
                    "beside this one's")
@@ -403,8 +408,10 @@ def _check(args) -> int:
     transient = {"drainage": args.drainage, "face": args.face, "column": args.well_column,
                  "compressibility": args.compressibility, "viscosity": args.viscosity,
                  "steps_per_doubling": args.steps_per_doubling}
+    from ..scale.memory import parse_memory
+
     run_check(args.fine, args.coarse, args.report, transient=transient, quiet=args.quiet, checks=args.checks,
-              compare=args.compare)
+              compare=args.compare, window=args.window, memory=parse_memory(args.memory) if args.memory else None)
     return 0
 
 

@@ -171,7 +171,7 @@ def check_readable(path: str | os.PathLike) -> Path:
     return path
 
 
-def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
+def open_field(path: str | os.PathLike, chunks=None, window=None) -> xr.Dataset:
     """Read and validate a fine (or coarse) field file.
 
     Parameters
@@ -182,6 +182,9 @@ def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
         A dask chunk spec, e.g. ``{"x": 100}`` or ``"auto"``: opens the file lazily; the
         checks run chunk by chunk in one pass and the values stay on disk until used
         (``coarsen`` aligns the chunks to whole coarse blocks). None reads it all now.
+    window : tuple of slice, optional
+        Fine-index slices per axis: only that sector is read (and validated), as a field
+        of its own.
 
     Returns
     -------
@@ -205,7 +208,9 @@ def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
             # no time decoding: a field holds no times, and units such as 'days since ...' on a
             # cell size must be refused as unknown units, not turned into dates
             raw = xr.open_dataset(path, engine="netcdf4", decode_times=False, decode_timedelta=False,
-                                  chunks=chunks)
+                                  chunks=chunks if window is None else {})
+            if window is not None:
+                raw = _sector(raw, window)
             if chunks is None:
                 with raw:
                     raw = raw.load()
@@ -224,6 +229,13 @@ def open_field(path: str | os.PathLike, chunks=None) -> xr.Dataset:
         if chunks is None:  # the data were read above: a fault of ours, not of the file
             raise
         raise _unreadable(path, exc) from None  # a lazy read failing part-way through the file
+
+
+def _sector(raw: xr.Dataset, window) -> xr.Dataset:
+    """The window of a lazily opened file, loaded (cell-size variables cut along their axis)."""
+    selection = {d: w for d, w in zip(("x", "y", "z"), window) if d in raw.dims}
+    with raw:
+        return raw.isel(selection).load()
 
 
 def _unreadable(path: Path, exc: Exception) -> InputError:

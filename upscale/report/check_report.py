@@ -23,6 +23,8 @@ def _header(metrics: dict) -> str:
     method = [["method", coarse.get("method")], ["boundary condition", coarse.get("boundary_condition")],
               ["border (fine cells)", coarse.get("border")], ["partition", coarse.get("partition")],
               ["coarse shape", " x ".join(map(str, coarse["shape"]))],
+              ["checked", f"a sector only: {metrics['sector']} (fine indices), as a model of its own with no-flow "
+                          "sides" if metrics.get("sector") else "the whole model"],
               ["written by", f"upscale {coarse.get('tool_version')}"],
               ["coarse grid made from this fine file", "yes" if coarse.get("input_matches_fine") else
                "no (checksums differ)"]]

@@ -77,7 +77,7 @@ def format_summary(summary: dict) -> str:
 def format_check(metrics: dict) -> str:
     """A short terminal table of the checks that ran: whole-model steady flow, diagonal
     flows beside their floors, the transient check, pore volumes, what was left out."""
-    lines = []
+    lines = [f"sector {metrics['sector']} (fine indices), checked as a model of its own"] if metrics.get("sector") else []
     if "global" in metrics:
         lines += ["whole-model steady flow (no-flow sides, unit pressure drop):",
                   f"{'axis':<6}{'fine k (mD)':>14}{'coarse k (mD)':>15}{'rel. error':>12}"]
