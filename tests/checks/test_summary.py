@@ -7,7 +7,6 @@ import pytest
 import xarray as xr
 
 from upscale.checks.summary import field_summary
-from upscale.core.heterogeneity import coefficient_of_variation, dykstra_parsons, lorenz
 from upscale.errors import InputError
 from upscale.io.schema import fine_dataset
 from upscale.io.validation import validate
@@ -97,22 +96,93 @@ def test_cell_statistics_match_numpy():
     assert s["values"]["kx"]["units"] == "mD"
 
 
+def _weighted_cv(k, weight):
+    """Coefficient of variation with frequency weights: std / mean by numpy's weighted averages."""
+    mean = np.average(k, weights=weight)
+    return float(np.sqrt(np.average((k - mean) ** 2, weights=weight)) / mean)
+
+
+def _weighted_percentile(values, weight, q):
+    """Hazen plotting positions (i - 1/2) / n of a probability plot (Jensen, Lake, Corbett
+    & Goggin 2000, Statistics for Petroleum Engineers and Geoscientists, from memory),
+    with weights as frequencies: the sorted value i sits at (C_i - w_i / 2) / W; linear
+    in between. Written here for distinct values (continuous random samples)."""
+    order = np.argsort(values)
+    values, weight = np.asarray(values)[order], np.asarray(weight)[order]
+    position = (np.cumsum(weight) - weight / 2) / weight.sum()
+    return float(np.interp(q / 100, position, values))
+
+
+def _dykstra_parsons(k, weight):
+    """V = (k50 - k84.1) / k50, k84.1 exceeded by 84.1 % of the rock (the 15.9th
+    percentile) (Dykstra & Parsons 1950; Jensen et al. 2000)."""
+    k50 = _weighted_percentile(k, weight, 50.0)
+    return (k50 - _weighted_percentile(k, weight, 15.9)) / k50
+
+
+def _lorenz(flow_capacity, storage_capacity):
+    """Schmalz & Rahme (1950): cells sorted by flow over storage capacity, largest first;
+    the cumulative fractions of flow against storage capacity, from the origin; 2 (area - 1/2)."""
+    order = np.argsort(-flow_capacity / storage_capacity)
+    flow = np.concatenate([[0.0], np.cumsum(flow_capacity[order]) / flow_capacity.sum()])
+    storage = np.concatenate([[0.0], np.cumsum(storage_capacity[order]) / storage_capacity.sum()])
+    return float(2 * (np.trapezoid(flow, storage) - 0.5))
+
+
+def _flow_permeability(v, mask):
+    return {"x": (v["kx"] * v["ntg"])[mask], "y": (v["ky"] * v["ntg"])[mask], "z": v["kz"][mask]}
+
+
 def test_heterogeneity_uses_flow_permeability_and_bulk_weights():
+    # CV and Dykstra-Parsons of the flow permeability (kx*ntg, ky*ntg, kz) over active cells,
+    # each cell weighted by its bulk volume (dx and dy vary here, so that weighting by
+    # thickness alone would differ), computed here by numpy (rounding only: 1e-12).
     ds, v = field()
     s = field_summary(ds)
     mask = (v["active"] == 1) & (v["dz"] > 0)
     bulk = (v["dx"][:, None, None] * v["dy"][None, :, None] * v["dz"])[mask]
-    storage = (v["porosity"] * v["ntg"])[mask]
-    flow = {"x": (v["kx"] * v["ntg"])[mask], "y": (v["ky"] * v["ntg"])[mask], "z": v["kz"][mask]}
-    for axis, k in flow.items():
+    for axis, k in _flow_permeability(v, mask).items():
         entry = s["heterogeneity"][axis]
-        assert entry["coefficient_of_variation"] == pytest.approx(coefficient_of_variation(k, bulk)), axis
-        assert entry["dykstra_parsons"] == pytest.approx(dykstra_parsons(k, bulk)), axis
-        assert entry["lorenz"] == pytest.approx(lorenz(k, storage, v["dz"][mask])), axis
+        assert entry["coefficient_of_variation"] == pytest.approx(_weighted_cv(k, bulk), rel=1e-12), axis
+        assert entry["dykstra_parsons"] == pytest.approx(_dykstra_parsons(k, bulk), rel=1e-12), axis
+        assert entry["coefficient_of_variation"] != pytest.approx(_weighted_cv(k, v["dz"][mask]), rel=1e-3)
         assert 0 < entry["lorenz"] < 1
     # ky = 0.8 kx everywhere: the dimensionless measures must agree between x and y.
     for key in ("coefficient_of_variation", "dykstra_parsons", "lorenz"):
         assert s["heterogeneity"]["x"][key] == pytest.approx(s["heterogeneity"]["y"][key], rel=1e-9)
+
+
+def test_lorenz_weights_cells_by_bulk_volume():
+    # Schmalz & Rahme (1950) plot flow capacity k h against storage capacity porosity h for
+    # layers of equal areal extent; for cells of different areas the same quantities per
+    # cell are k V and porosity ntg V (a cell of twice the volume is two cells). Computed
+    # here with numpy (rounding only: 1e-12).
+    ds, v = field()
+    s = field_summary(ds)
+    mask = (v["active"] == 1) & (v["dz"] > 0)
+    bulk = (v["dx"][:, None, None] * v["dy"][None, :, None] * v["dz"])[mask]
+    storage = (v["porosity"] * v["ntg"])[mask] * bulk
+    for axis, k in _flow_permeability(v, mask).items():
+        assert s["heterogeneity"][axis]["lorenz"] == pytest.approx(_lorenz(k * bulk, storage), rel=1e-12), axis
+
+
+def _split_second_column():
+    """The inputs with column x = 1 (dx = 20 m) cut into two identical columns of 10 m."""
+    values = inputs()
+    twice = {name: np.concatenate([a[:2], a[1:]], axis=0) if np.ndim(a) == 3 else a for name, a in values.items()}
+    twice["dx"] = np.array([10.0, 10.0, 10.0, 15.0, 5.0])
+    return twice
+
+
+@pytest.mark.parametrize("measure", ["coefficient_of_variation", "dykstra_parsons",
+                                     "lorenz"])
+def test_splitting_a_column_leaves_the_heterogeneity_unchanged(measure):
+    # A column 20 m wide and two identical columns 10 m wide are the same rock: every
+    # measure must be the same (weights act as frequencies); rounding only, 1e-12.
+    before = field_summary(field()[0])["heterogeneity"]
+    after = field_summary(validate(fine_dataset(**_split_second_column())))["heterogeneity"]
+    for axis in "xyz":
+        assert after[axis][measure] == pytest.approx(before[axis][measure], rel=1e-12), axis
 
 
 def test_homogeneous_net_field_has_no_horizontal_heterogeneity():

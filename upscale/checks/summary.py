@@ -106,8 +106,9 @@ def field_summary(ds: xr.Dataset) -> dict:
         ``volumes`` (m3): ``bulk`` (all cells), ``active_bulk``, ``pore`` (porosity * ntg *
         bulk over active cells); ``heterogeneity``: for x, y, z the flow permeability
         kx*ntg, ky*ntg, kz over active cells with coefficient of variation and
-        Dykstra-Parsons weighted by cell bulk volume, and the Lorenz coefficient with h =
-        dz and the cell's pore-volume porosity porosity * ntg (so that net-to-gross alone,
+        Dykstra-Parsons weighted by cell bulk volume, and the Lorenz coefficient with each
+        cell weighted by its bulk volume (flow capacity k V, storage capacity porosity ntg V)
+        and the cell's pore-volume porosity porosity * ntg (so that net-to-gross alone,
         which scales flow and storage alike, does not count as heterogeneity);
         ``transmissibility``: for each face variable tx, ty, tz, tx_*, ty_*, tz_* present,
         its dims, units, count, min/max/mean over finite values.
@@ -171,7 +172,6 @@ def _heterogeneity(fine) -> dict:
     active = fine.active
     weight = fine.bulk_volume[active]
     storage_porosity = (fine.porosity * fine.ntg)[active]
-    thickness = fine.dz[active]
     out = {}
     for axis, k in zip(AXES, fine.flow_permeability()):
         k = k[active]
@@ -179,6 +179,6 @@ def _heterogeneity(fine) -> dict:
             "permeability": FLOW_PERMEABILITY[axis],
             "coefficient_of_variation": coefficient_of_variation(k, weight),
             "dykstra_parsons": dykstra_parsons(k, weight),
-            "lorenz": lorenz(k, storage_porosity, thickness),
+            "lorenz": lorenz(k, storage_porosity, weight),
         }
     return out
