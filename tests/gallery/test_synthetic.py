@@ -68,22 +68,35 @@ def test_gaussian_field_is_exactly_standardised(shape, data, seed, kind):
     assert abs(values.std() - 1.0) < 1e-12
 
 
+SEEDS = 16
+
+
 @pytest.mark.parametrize("axis", [0, 1, 2])
 def test_gaussian_correlation_is_one_over_e_at_one_length(axis):
+    # The Gaussian covariance C(h) = exp(-(h / L)^2) along one axis: C(L / 2) = exp(-1/4),
+    # C(L) = exp(-1), C(2 L) = exp(-4) (the exponential model exp(-h / L) would give
+    # exp(-1/2), exp(-1), exp(-2): the half and double lags tell the two apart). Estimated
+    # from SEEDS independent fields of 400 x 48 x 48 cells; the tolerance is four standard
+    # errors of the mean over seeds (from their own spread; with 15 degrees of freedom a
+    # two-sided 0.1 % level), plus 1e-3 for the bias of correlations of a field whose
+    # sample mean is removed: about Var(sample mean) = (1 / N) sum_h C(h) =
+    # (sqrt(pi) 8)(sqrt(pi) 2)^2 / 921600 = 2e-4.
     length = 8
     shape = [48, 48, 48]
     shape[axis] = 400
     lengths = [2, 2, 2]
     lengths[axis] = length
-    values = gaussian_field(tuple(shape), lengths, seed=11 + axis)
-    at_zero = lag_correlation(values, axis, 0)
-    at_length = lag_correlation(values, axis, length)
-    far = lag_correlation(values, axis, 4 * length)
-    assert at_zero == pytest.approx(1.0)
-    assert 0.2 < at_length < 0.7
-    assert at_length == pytest.approx(math.exp(-1.0), abs=0.08)  # C(L) = exp(-1)
-    assert abs(far) < 0.1
-    assert far < at_length < at_zero
+    lags = {length // 2: math.exp(-0.25), length: math.exp(-1.0), 2 * length: math.exp(-4.0)}
+    estimates = {lag: [] for lag in lags}
+    for seed in range(SEEDS):
+        values = gaussian_field(tuple(shape), lengths, seed=100 * axis + seed)
+        for lag in lags:
+            estimates[lag].append(lag_correlation(values, axis, lag))
+    for lag, expected in lags.items():
+        sample = np.array(estimates[lag])
+        standard_error = sample.std(ddof=1) / math.sqrt(SEEDS)
+        assert 0 < standard_error < 0.01, (lag, standard_error)  # the test stays sharp
+        assert sample.mean() == pytest.approx(expected, abs=4 * standard_error + 1e-3), (lag, standard_error)
 
 
 def test_gaussian_and_exponential_models_differ_at_short_lag():

@@ -281,7 +281,25 @@ def test_cli_on_a_distributed_cluster_gives_the_in_memory_answer(field_path, tmp
     done = _run("coarsen", *common, "-o", tmp_path / "b.nc", "--box", 2, 2, 2, "--scheduler", address)
     assert done.returncode == 0, done.stderr
     _assert_same(xr.load_dataset(tmp_path / "a.nc"), xr.load_dataset(tmp_path / "b.nc"))
-    assert sum(client.run(lambda dask_worker: len(dask_worker.data) >= 0).values()) == 2
+    # The boxes ran on the cluster's workers: each worker's own log of task transitions
+    # holds the packed box tasks (upscale.scale.boxes._run_here) it computed. Counted by
+    # hand: blocks ceil(13/3) x ceil(11/2) x ceil(9/4) = 5 x 6 x 3, boxes of 2 x 2 x 2
+    # blocks: 3 x 3 x 2 = 18, every one computed once on a worker and none left to the
+    # command's own process; with two workers and the command submitting from several
+    # threads, both workers take part.
+    def box_tasks_computed(dask_worker) -> list[str]:
+        """The keys of the packed box tasks this worker computed (executing -> memory in its
+        transition log: the last 1000 transitions by default, about 200 here). Defined
+        here so that it travels to the workers by value."""
+        return sorted({str(entry[0]) for entry in dask_worker.state.log
+                       if isinstance(entry, tuple) and len(entry) >= 3 and str(entry[0]).startswith("_run_here-")
+                       and entry[1] == "executing" and entry[2] == "memory"})
+
+    ran = client.run(box_tasks_computed)
+    assert len(ran) == 2
+    every = [key for keys in ran.values() for key in keys]
+    assert len(every) == len(set(every)) == 18, {worker: len(keys) for worker, keys in ran.items()}
+    assert all(len(keys) >= 1 for keys in ran.values()), {worker: len(keys) for worker, keys in ran.items()}
 
 
 def test_a_worker_killed_mid_run_does_not_change_the_answer(tmp_path, loopback_cluster):
@@ -307,11 +325,68 @@ def test_a_worker_killed_mid_run_does_not_change_the_answer(tmp_path, loopback_c
     assert not list(tmp_path.glob("*.part"))
 
 
+def _cardwell_parsons(k, dx, dy, dz, edges, axis):
+    """Independent Cardwell & Parsons (1945) bounds of every block along ``axis`` for the
+    two-point network of the cells (conductance k V / l^2 per cell): lower, the columns
+    along the axis in parallel, each a series of cells; upper, the slices across the axis
+    in series, each a parallel of cells; block permeability G L^2 / V."""
+    lengths = np.broadcast_arrays(dx[:, None, None], dy[None, :, None], dz)
+    volume = lengths[0] * lengths[1] * lengths[2]
+    conductance = k * volume / lengths[axis] ** 2
+    shape = tuple(len(e) - 1 for e in edges)
+    lower, upper = np.zeros(shape), np.zeros(shape)
+    for block in np.ndindex(*shape):
+        cut = tuple(slice(edges[a][block[a]], edges[a][block[a] + 1]) for a in range(3))
+        g = np.moveaxis(conductance[cut], axis, 0)
+        with np.errstate(divide="ignore"):
+            columns = 1.0 / np.sum(1.0 / g, axis=0)               # 0 where a cell has k = 0
+            slices = 1.0 / np.sum(1.0 / np.sum(g, axis=(1, 2)))
+        block_volume = volume[cut].sum()
+        lx, ly = dx[cut[0]].sum(), dy[cut[1]].sum()
+        length = (lx, ly, block_volume / (lx * ly))[axis]
+        lower[block] = columns.sum() * length ** 2 / block_volume
+        upper[block] = slices * length ** 2 / block_volume
+    return lower, upper
+
+
 def test_bordered_sealed_results_are_not_flagged_against_the_block_bounds(field_path, caplog):
     """The Cardwell-Parsons bounds bracket a block's own sealed result (Cardwell & Parsons
-    1945); with a border ring the result may leave them, and that is no fault to report."""
+    1945); with a border ring the result may leave them, and that is no fault to report.
+    Positive control: the bordered results do leave their blocks' bounds (counted here
+    against bounds computed independently), and the same grid presented as unbordered is
+    flagged with exactly those counts; the unbordered sealed grid is inside and unflagged."""
     import logging
 
+    from upscale.io.coarse_grid import warn_flagged
+
+    fine = open_field(field_path)
     with caplog.at_level(logging.WARNING):
-        coarsen(open_field(field_path), ratio=(3, 2, 4), method="flow", border=2)
+        bordered = coarsen(fine, ratio=(3, 2, 4), method="flow", border=2)
+        plain = coarsen(fine, ratio=(3, 2, 4), method="flow")
     assert "Cardwell-Parsons" not in caplog.text
+    active = fine["active"].values.astype(bool)
+    ntg = fine["ntg"].values
+    flowing = (fine["kx"].values * ntg * active, fine["ky"].values * ntg * active, fine["kz"].values * active)
+    edges = [np.asarray(bordered.attrs[f"edges_{name}"].split(), dtype=int) for name in "xyz"]
+    blocks_active = bordered["active"].values.astype(bool)
+    outside = {}
+    for axis, name in enumerate("xyz"):
+        lower, upper = _cardwell_parsons(flowing[axis], fine["dx"].values, fine["dy"].values, fine["dz"].values,
+                                         edges, axis)
+        np.testing.assert_allclose(bordered[f"k{name}_lower_bound"].values, lower, rtol=1e-12)
+        np.testing.assert_allclose(bordered[f"k{name}_upper_bound"].values, upper, rtol=1e-12)
+        for coarse, counts in ((bordered, outside), (plain, None)):
+            k = coarse[f"k{name}"].values * (coarse["ntg"].values if axis < 2 else 1.0)
+            out = blocks_active & ((k < lower * (1 - 1e-8)) | (k > upper * (1 + 1e-8)))
+            if counts is None:
+                assert not out.any(), name   # no border: inside, as Cardwell & Parsons say
+            else:
+                counts[name] = int(out.sum())
+    assert all(count > 0 for count in outside.values()), outside
+    caplog.clear()
+    presented = bordered.copy()
+    presented.attrs["border"] = 0
+    with caplog.at_level(logging.WARNING):
+        warn_flagged(presented)
+    for name, count in outside.items():
+        assert f"{count} coarse block(s) have sealed flow-based k{name} outside the Cardwell-Parsons" in caplog.text
