@@ -32,7 +32,7 @@ import numpy as np
 from numba import njit, prange
 
 from .._runtime import first_call
-from .block_problems import LocalDomain, local_domains, solve_domains
+from .block_problems import BATCH_BYTES, LocalDomain, local_domains, solve_domains
 from .grid import AXES, GridArrays
 from .partition import Partition, block_groups
 from .rock_curves import Fluids, RockCurves, leverett_scale, saturation_at_pressure
@@ -78,9 +78,12 @@ class TwoPhaseRecipe:
     points: int
     codes: np.ndarray
     rock_of_code: np.ndarray
+    regions: str | None = None
 
-    #: fine variables a box needs beside the field schema's
-    fine_variables = ("facies",)
+    @property
+    def fine_variables(self) -> tuple[str, ...]:
+        """Fine variables a box needs beside the field schema's: the facies, the regions' codes."""
+        return ("facies",) + ((self.regions,) if self.regions not in (None, "facies") else ())
 
     def halo(self, partition: Partition):
         """Fine cells beyond a box: the border ring (:meth:`Recipe.halo`)."""
@@ -88,7 +91,8 @@ class TwoPhaseRecipe:
 
     def variable_names(self) -> list[str]:
         """The names :meth:`compute` returns."""
-        return block_variable_names(self.single) + list(BLOCK_VARIABLES) + list(POINT_VARIABLES)
+        regions = ["block_region"] if self.regions else []
+        return block_variable_names(self.single) + list(BLOCK_VARIABLES) + regions + list(POINT_VARIABLES)
 
     def trailing(self, name: str) -> tuple[int, ...]:
         """The shape of variable ``name`` per block: (points,) or ()."""
@@ -99,17 +103,40 @@ class TwoPhaseRecipe:
         """The points: the block's normalised Sw (capillary) or the fractional flow (viscous), (P,)."""
         return np.linspace(0.0, 1.0, self.points)
 
-    def rock_index(self, facies: np.ndarray, active: np.ndarray) -> np.ndarray:
-        """The rock index of every cell from its facies code (0 in inactive cells).
+    def compute(self, cells: GridArrays, partition: Partition, blocks, budget: int = BATCH_BYTES, progress=None,
+                extra: dict | None = None) -> dict[str, np.ndarray]:
+        """:func:`two_phase_variables` of a box (the interface of :mod:`upscale.scale.boxes`);
+        ``extra`` holds the :attr:`fine_variables`; with regions, also each block's ``block_region``
+        (:func:`block_codes`)."""
+        rock = rock_index(self.codes, self.rock_of_code, extra["facies"], cells.active)
+        out = two_phase_variables(cells, rock, partition, blocks, self, budget, progress)
+        if self.regions:
+            box = tuple(slice(int(partition.edges[a][b.start]), int(partition.edges[a][b.stop]))
+                        for a, b in enumerate(blocks))
+            out["block_region"] = block_codes(np.asarray(extra[self.regions])[box], cells.crop(box).pore_volume,
+                                        partition.crop(blocks))
+        return out
 
-        The codes of active cells are known to have a rock (checked when the table was read)."""
-        codes = np.asarray(facies)
-        where = np.clip(np.searchsorted(self.codes, codes), 0, self.codes.size - 1)
-        return np.where(active, self.rock_of_code[where], 0)
 
-    def compute(self, cells: GridArrays, partition: Partition, blocks, budget: int, facies=None) -> dict:
-        """:func:`two_phase_variables` of a box (the interface of :mod:`upscale.scale.boxes`)."""
-        return two_phase_variables(cells, self.rock_index(facies, cells.active), partition, blocks, self, budget)
+def rock_index(codes: np.ndarray, rock_of_code: np.ndarray, facies: np.ndarray, active: np.ndarray) -> np.ndarray:
+    """The rock index of every cell from its facies code.
+
+    Parameters
+    ----------
+    codes : ndarray of int, (C,)
+        The facies codes with a rock type, sorted.
+    rock_of_code : ndarray of int, (C,)
+        The rock index of each code.
+    facies, active : ndarray, (nx, ny, nz)
+        The cells' codes (those of active cells among ``codes``) and active flags.
+
+    Returns
+    -------
+    ndarray of int, (nx, ny, nz)
+        0 in inactive cells.
+    """
+    where = np.clip(np.searchsorted(codes, np.asarray(facies)), 0, codes.size - 1)
+    return np.where(active, rock_of_code[where], 0)
 
 
 @dataclass(frozen=True)
@@ -151,7 +178,7 @@ def cell_rocks(cells: GridArrays, rock: np.ndarray, curves: RockCurves, fluids: 
 
 
 def two_phase_variables(cells: GridArrays, rock: np.ndarray, partition: Partition, blocks, recipe: TwoPhaseRecipe,
-                        budget: int) -> dict[str, np.ndarray]:
+                        budget: int = BATCH_BYTES, progress=None) -> dict[str, np.ndarray]:
     """Everything a two-phase curve file holds per block, for a box of whole blocks.
 
     Parameters
@@ -167,6 +194,9 @@ def two_phase_variables(cells: GridArrays, rock: np.ndarray, partition: Partitio
     recipe : TwoPhaseRecipe
     budget : int
         Bytes one batch of local solves may hold (all points and phases together).
+    progress : callable, optional
+        Receives the number of blocks finished by each batch, once for the single-phase
+        solves and once for the phase solves.
 
     Returns
     -------
@@ -176,10 +206,11 @@ def two_phase_variables(cells: GridArrays, rock: np.ndarray, partition: Partitio
         point (box shape + (P,)) ``sw``, ``pc`` (bar; infinite at the connate end of the
         capillary limit), ``krw_x`` ... ``kro_z``.
     """
-    out = block_variables(cells, partition, blocks, recipe.single, budget=budget)
+    out = block_variables(cells, partition, blocks, recipe.single, progress=progress, budget=budget)
     rocks = cell_rocks(cells, rock, recipe.curves, recipe.fluids)
     states = saturation_states(cells, rocks, partition, blocks, recipe)
-    water, oil, residual = phase_permeability_ratios(cells, rocks, partition, blocks, recipe, states, budget)
+    water, oil, residual = phase_permeability_ratios(cells, rocks, partition, blocks, recipe, states, budget,
+                                                     progress)
     out.update(swc=states.ends[..., 0], sor=states.ends[..., 1], sw=states.sw, pc=states.pc,
                two_phase_residual=residual)
     for axis, name in enumerate(AXES):
@@ -389,7 +420,8 @@ def viscous_states(cells: GridArrays, rocks: CellRocks, partition: Partition, cu
         sums += volume[..., None] * np.array([curves.swc[r], curves.sor[r]])
         sw += volume[..., None] * cell_sw[r]
         leverett = partition.block_sum(np.where(entered, own * rocks.scale, 0.0))[..., None]
-        scaled += np.where(leverett > 0, leverett * rock_j[r], 0.0)
+        with np.errstate(invalid="ignore"):  # inf * 0 where the block has none of the rock
+            scaled += np.where(leverett > 0, leverett * rock_j[r], 0.0)
     flowing = partition.block_sum(np.where(entered, pore, 0.0))[..., None]
     with np.errstate(invalid="ignore"):
         pc = np.where(flowing > 0, scaled / np.where(flowing > 0, flowing, 1.0), np.nan)
@@ -399,7 +431,7 @@ def viscous_states(cells: GridArrays, rocks: CellRocks, partition: Partition, cu
 
 
 def phase_permeability_ratios(cells: GridArrays, rocks: CellRocks, partition: Partition, blocks,
-                              recipe: TwoPhaseRecipe, states: States, budget: int):
+                              recipe: TwoPhaseRecipe, states: States, budget: int, progress=None):
     """Block kr per point, phase and direction: the phase effective permeability (local
     solves on k kr(Sw) of every cell of the local domain) over the single-phase one.
 
@@ -411,6 +443,8 @@ def phase_permeability_ratios(cells: GridArrays, rocks: CellRocks, partition: Pa
         The saturation points of the box's blocks.
     budget : int
         Bytes per batch of solves.
+    progress : callable, optional
+        Receives the number of blocks finished by each batch.
 
     Returns
     -------
@@ -429,10 +463,12 @@ def phase_permeability_ratios(cells: GridArrays, rocks: CellRocks, partition: Pa
     for batch, domain in local_domains(cells, partition, recipe.single.border, budget=max(budget // copies, 1),
                                        only=only, permeability=k):
         sn = _batch_saturations(batch, rocks, state, recipe)
-        phases = _phase_domains(domain, batch.gather(rocks.rock).astype(np.int64), sn, recipe.curves)
-        diagonal, worst = _solve_copies(phases, copies, recipe.single.local_bc)
+        diagonal, worst = _phase_solves(domain, batch.gather(rocks.rock).astype(np.int64), sn, recipe.curves,
+                                        recipe.single.local_bc)
         batch.scatter(tensor, diagonal)
         batch.scatter(residual, worst)
+        if progress is not None:
+            progress(batch.count)
     tensor, residual = tensor[blocks], residual[blocks]
     single = tensor[..., :1, :]
     water = divide_or_zero(tensor[..., 1:points + 1, :], single)
@@ -461,36 +497,104 @@ def _batch_saturations(batch, rocks: CellRocks, state: np.ndarray, recipe: TwoPh
     return saturation_at_pressure(pc, entry, recipe.curves.pore_size_index[rock])
 
 
-def _phase_domains(domain: LocalDomain, rock: np.ndarray, sn: np.ndarray, curves: RockCurves) -> LocalDomain:
-    """The batch's domains repeated for single phase and each point's water and oil: k
-    times 1, krw(Sw) and kro(Sw) of every cell; (nb * (2P + 1), sx, sy, sz) arrays."""
-    nb, points = sn.shape[:2]
-    rock = rock.reshape(nb, 1, -1)
+def _phase_solves(domain: LocalDomain, rock: np.ndarray, sn: np.ndarray, curves: RockCurves, bc: str
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """The batch's domains solved for single phase and each point's water and oil: k times
+    1, krw(Sw) and kro(Sw) of every cell, as one batch of nb (2P + 1) domains. A copy whose
+    factor is the same in every cell that carries flow (one rock type at one saturation,
+    or none flowing) scales the single-phase solution exactly: it takes the single-phase
+    result times the factor without a solve.
+
+    Returns
+    -------
+    diagonal : ndarray, (nb, 2P + 1, 3)
+        Effective permeability per copy and direction, mD.
+    worst : ndarray, (nb,)
+        The largest relative residual of each block's solves.
+    """
+    nb, points, n = sn.shape
+    rock = rock.reshape(nb, 1, n)
     krw = curves.krw_max[rock] * sn ** curves.nw[rock]
     kro = curves.kro_max[rock] * (1.0 - sn) ** curves.no[rock]
-    factor = np.concatenate([np.ones((nb, 1, sn.shape[2])), krw, kro], axis=1)
-    full = (nb * factor.shape[1],) + domain.shape
-    k = tuple((factor * kk.reshape(nb, 1, -1)).reshape(full) for kk in domain.k)
-    lengths = tuple(np.broadcast_to(np.asarray(length).reshape(nb, 1, -1), factor.shape).reshape(full)
-                    for length in domain.lengths)
-    return LocalDomain(k=k, lengths=lengths, target=domain.target)
-
-
-def _solve_copies(phases: LocalDomain, copies: int, bc: str) -> tuple[np.ndarray, np.ndarray]:
-    """Diagonal effective permeability (nb, copies, 3), mD, and the largest residual per
-    block (nb,) of the repeated domains; copies whose permeability is 0 everywhere are 0
-    without a solve."""
-    total = phases.count
-    flows = np.zeros(total, dtype=bool)
-    for k in phases.k:
-        flows |= k.reshape(total, -1).max(axis=1) > 0
-    kept = np.flatnonzero(flows)
-    diagonal = np.zeros((total, 3))
-    residual = np.zeros(total)
+    factor = np.concatenate([np.ones((nb, 1, n)), krw, kro], axis=1)
+    copies = factor.shape[1]
+    carries = sum(k.reshape(nb, 1, n) for k in domain.k) > 0
+    highest = np.where(carries, factor, -np.inf).max(axis=2)
+    uniform = highest == np.where(carries, factor, np.inf).min(axis=2)
+    solved = ~uniform
+    solved[:, 0] = carries.any(axis=(1, 2))
+    kept = np.flatnonzero(solved)
+    block = kept // copies
+    factor = factor.reshape(nb * copies, n)[kept]
+    phases = LocalDomain(k=tuple((factor * k.reshape(nb, n)[block]).reshape((kept.size,) + domain.shape)
+                                 for k in domain.k),
+                         lengths=tuple(np.asarray(length)[block] for length in domain.lengths), target=domain.target)
+    diagonal = np.zeros((nb * copies, 3))
+    residual = np.zeros(nb * copies)
     if kept.size:
-        domain = LocalDomain(k=tuple(k[kept] for k in phases.k), lengths=tuple(length[kept] for length in phases.lengths),
-                             target=phases.target)
-        tensor, residual[kept], _ = solve_domains(domain, bc)
+        tensor, residual[kept], _ = solve_domains(phases, bc)
         diagonal[kept] = np.einsum("bii->bi", tensor)
-    nb = total // copies
-    return diagonal.reshape(nb, copies, 3), residual.reshape(nb, copies).max(axis=1)
+    diagonal = diagonal.reshape(nb, copies, 3)
+    scaled = uniform.copy()
+    scaled[:, 0] = False
+    diagonal[scaled] = (np.where(np.isfinite(highest), highest, 0.0)[..., None] * diagonal[:, :1])[scaled]
+    return diagonal, residual.reshape(nb, copies).max(axis=1)
+
+
+def block_codes(values: np.ndarray, pore_volume: np.ndarray, partition: Partition) -> np.ndarray:
+    """The code of every block: the one holding most of its pore volume.
+
+    Parameters
+    ----------
+    values : ndarray of int, (nx, ny, nz)
+        A code per fine cell.
+    pore_volume : ndarray, (nx, ny, nz)
+        m3.
+    partition : Partition
+
+    Returns
+    -------
+    ndarray of int, (NX, NY, NZ)
+        Ties go to the lower code; a block without pore volume takes the lowest code of
+        the cells with pore volume (it has no curves to weigh).
+    """
+    values = np.asarray(values)
+    codes = np.unique(values[pore_volume > 0]) if np.any(pore_volume > 0) else np.unique(values)
+    sums = np.stack([partition.block_sum(np.where(values == c, pore_volume, 0.0)) for c in codes])
+    return codes[np.argmax(sums, axis=0)]
+
+
+def region_curves(codes: np.ndarray, pore_volume: np.ndarray, curves: dict[str, np.ndarray]
+                  ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """One curve set per region of blocks sharing a code, by pore-volume weighting.
+
+    Parameters
+    ----------
+    codes : ndarray of int, (NX, NY, NZ)
+        The region code of every block.
+    pore_volume : ndarray, (NX, NY, NZ)
+        m3.
+    curves : dict of ndarray, (NX, NY, NZ, P) each
+        The blocks' point variables (:data:`POINT_VARIABLES`).
+
+    Returns
+    -------
+    region : ndarray of int, (G,)
+        The codes, sorted.
+    averaged : dict of ndarray, (G, P) each
+        Sum over the region's blocks of pore volume times the value, over their pore
+        volume (blocks without pore volume left out; a Pc infinite in any block stays so).
+    """
+    region, index = np.unique(codes, return_inverse=True)
+    index = index.ravel()
+    weight = np.where(pore_volume > 0, pore_volume, 0.0).ravel()
+    used = weight > 0
+    totals = np.bincount(index, weights=weight, minlength=region.size)
+    averaged = {}
+    for name, value in curves.items():
+        flat = value.reshape(weight.size, -1)
+        summed = np.zeros((region.size, flat.shape[1]))
+        np.add.at(summed, index[used], weight[used, None] * flat[used])
+        averaged[name] = np.divide(summed, totals[:, None], out=np.full(summed.shape, np.nan),
+                                   where=totals[:, None] > 0)
+    return region, averaged
