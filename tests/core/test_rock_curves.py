@@ -14,7 +14,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from upscale.core.rock_curves import Fluids, RockCurves, leverett_scale, saturation_at_pressure
+from upscale.core.rock_curves import Fluids, RockCurves, leverett_scale, log_saturation_at_pressure
 
 
 def rock(swc=0.2, sor=0.2, krw_max=0.4, kro_max=0.8, nw=2.0, no=2.0, j_entry=0.5, pore_size_index=2.0):
@@ -59,11 +59,11 @@ def test_brooks_corey_inversion_returns_the_saturation(swc, sor, lam, entry, sn)
     # Pc(Sn) = Pe Sn^(-1/lambda) (Brooks & Corey 1964), inverted: Sn = (Pc / Pe)^(-lambda) above
     # Pe, 1 at or below it. Round trip to a few ulps of the powers taken.
     pc = entry * sn ** (-1.0 / lam)
-    got = saturation_at_pressure(pc, np.array([entry]), np.array([lam]))[0]
-    assert got == pytest.approx(sn, rel=1e-12, abs=1e-15)
-    assert saturation_at_pressure(0.5 * entry, np.array([entry]), np.array([lam]))[0] == 1.0
-    assert saturation_at_pressure(np.inf, np.array([entry]), np.array([lam]))[0] == 0.0
-    assert saturation_at_pressure(7.0, np.array([np.inf]), np.array([lam]))[0] == 1.0
+    assert np.exp(log_saturation_at_pressure(np.log(pc), np.log(entry), lam)) == pytest.approx(sn, rel=1e-12,
+                                                                                              abs=1e-15)
+    assert log_saturation_at_pressure(np.log(0.5 * entry), np.log(entry), lam) == 0.0   # Sn = 1
+    assert log_saturation_at_pressure(np.inf, np.log(entry), lam) == -np.inf          # Sn = 0
+    assert log_saturation_at_pressure(np.log(7.0), np.inf, lam) == 0.0                # never entered
 
 
 @pytest.mark.parametrize("n", [1.0, 2.0, 3.5])

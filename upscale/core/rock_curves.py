@@ -20,7 +20,7 @@ A rock with swc = 0.2, sor = 0.2 at Sw = 0.5 (Sn = 0.5):
 >>> import numpy as np
 >>> rock = RockCurves(("sand",), *(np.array([v]) for v in (0.2, 0.2, 0.4, 0.8, 2.0, 2.0, 0.5, 2.0)))
 >>> zero = np.zeros(1, int)
->>> float(rock.water(np.array([0.5]), zero)[0]), float(rock.oil(np.array([0.5]), zero)[0])
+>>> round(float(rock.water(np.array([0.5]), zero)[0]), 12), round(float(rock.oil(np.array([0.5]), zero)[0]), 12)
 (0.1, 0.2)
 >>> round(float(rock.leverett_j(np.array([0.5]), zero)[0]), 6)   # 0.5 * 0.5^(-1/2)
 0.707107
@@ -31,6 +31,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 
 from .units import BAR_PA, MILLIDARCY_M2
 
@@ -178,24 +179,27 @@ def leverett_scale(porosity: np.ndarray, permeability: np.ndarray, interfacial_t
     return interfacial_tension * np.sqrt(out) / BAR_PA
 
 
-def saturation_at_pressure(pc, entry: np.ndarray, exponent: np.ndarray) -> np.ndarray:
-    """Normalised saturation of cells at a capillary pressure: the Brooks-Corey curve inverted.
+@njit(cache=True)
+def log_saturation_at_pressure(log_pc: float, log_entry: float, exponent: float) -> float:
+    """ln Sn of a cell at a capillary pressure: the Brooks-Corey curve inverted, in logs
+    (compiled; scalars).
 
     Parameters
     ----------
-    pc : float or ndarray
-        Capillary pressure, bar (may be infinite).
-    entry : ndarray
-        Each cell's entry pressure, bar (infinite: never entered).
-    exponent : ndarray
-        Each cell's pore-size index lambda.
+    log_pc : float
+        ln of the capillary pressure in bar (may be +inf).
+    log_entry : float
+        ln of the cell's entry pressure in bar (+inf: never entered; -inf: no capillary
+        pressure at all).
+    exponent : float
+        The cell's pore-size index lambda.
 
     Returns
     -------
-    ndarray
-        Sn: 1 at or below the entry pressure (and where it is infinite), (Pc / Pe)^(-lambda) above.
+    float
+        0 (Sn = 1) at or below the entry pressure, lambda (ln Pe - ln Pc) above it:
+        Sn = (Pe / Pc)^lambda; -inf (Sn = 0) at an infinite Pc.
     """
-    pc, entry = np.broadcast_arrays(np.asarray(pc, dtype=float), entry)
-    entered = (pc > entry) & np.isfinite(entry)
-    ratio = np.divide(entry, pc, out=np.ones(pc.shape), where=entered)
-    return np.where(entered, ratio ** exponent, 1.0)
+    if log_pc <= log_entry:
+        return 0.0
+    return exponent * (log_entry - log_pc)

@@ -35,7 +35,7 @@ from .._runtime import first_call
 from .block_problems import BATCH_BYTES, LocalDomain, local_domains, solve_domains
 from .grid import AXES, GridArrays
 from .partition import Partition, block_groups
-from .rock_curves import Fluids, RockCurves, leverett_scale, saturation_at_pressure
+from .rock_curves import Fluids, RockCurves, leverett_scale, log_saturation_at_pressure
 from .static import divide_or_zero
 from .upscaling import Recipe, block_variable_names, block_variables
 
@@ -462,8 +462,7 @@ def phase_permeability_ratios(cells: GridArrays, rocks: CellRocks, partition: Pa
     only = tuple(np.arange(b.start, b.stop) for b in blocks)
     for batch, domain in local_domains(cells, partition, recipe.single.border, budget=max(budget // copies, 1),
                                        only=only, permeability=k):
-        sn = _batch_saturations(batch, rocks, state, recipe)
-        diagonal, worst = _phase_solves(domain, batch.gather(rocks.rock).astype(np.int64), sn, recipe.curves,
+        diagonal, worst = _phase_solves(domain, *_batch_factors(batch, domain, rocks, state, recipe),
                                         recipe.single.local_bc)
         batch.scatter(tensor, diagonal)
         batch.scatter(residual, worst)
@@ -487,23 +486,90 @@ def _window_states(partition: Partition, blocks, states: States, recipe: TwoPhas
     return window
 
 
-def _batch_saturations(batch, rocks: CellRocks, state: np.ndarray, recipe: TwoPhaseRecipe) -> np.ndarray:
-    """Normalised saturation of every cell of a batch's domains at each point, (nb, P, n)."""
-    rock = batch.gather(rocks.rock).astype(np.int64).reshape(batch.count, 1, -1)
-    if recipe.limit == "viscous":
-        return state[rock[:, 0, :]].transpose(0, 2, 1)
-    pc = state[np.ix_(*batch.blocks)].reshape(batch.count, recipe.points, 1)
-    entry = batch.gather(rocks.entry).reshape(batch.count, 1, -1)
-    return saturation_at_pressure(pc, entry, recipe.curves.pore_size_index[rock])
+def _batch_factors(batch, domain: LocalDomain, rocks: CellRocks, state: np.ndarray, recipe: TwoPhaseRecipe):
+    """The permeability factor of every cell of a batch's domains for each copy: 1, then
+    krw(Sw) at each point, then kro(Sw) at each point, (nb, 2P + 1, n); and per copy the
+    lowest and highest factor over the cells that carry flow (nb, 2P + 1)."""
+    nb, points, curves = batch.count, recipe.points, recipe.curves
+    rock = batch.gather(rocks.rock).astype(np.int64).reshape(nb, -1)
+    carries = (sum(k.reshape(nb, -1) for k in domain.k) > 0)
+    factor = np.empty((nb, 2 * points + 1, rock.shape[1]))
+    low, high = np.empty((nb, 2 * points + 1)), np.empty((nb, 2 * points + 1))
+    capillary = recipe.limit == "capillary"
+    with np.errstate(divide="ignore"):  # ln 0 = -inf: a cell without capillary pressure
+        log_pc = np.log(state[np.ix_(*batch.blocks)].reshape(nb, points)) if capillary else np.zeros((nb, points))
+        log_entry = np.log(batch.gather(rocks.entry).reshape(nb, -1)) if capillary else np.zeros(rock.shape)
+    if capillary:
+        water = oil = np.zeros((1, points))
+    else:  # every cell of a rock type at one saturation per point: its kr looked up
+        kinds = np.arange(len(curves.names))[:, None]
+        water, oil = (f(curves.saturation(state, kinds), kinds) for f in (curves.water, curves.oil))
+    with first_call(_phase_factors):
+        _phase_factors(capillary, log_pc, log_entry, water, oil, rock, carries, curves.pore_size_index,
+                       curves.krw_max, curves.nw, curves.kro_max, curves.no, factor, low, high)
+    return factor, low, high
 
 
-def _phase_solves(domain: LocalDomain, rock: np.ndarray, sn: np.ndarray, curves: RockCurves, bc: str
+@njit(cache=True)
+def _cell_factors(capillary, log_pc, log_entry, water, oil, r, j, exponent, krw_max, nw, kro_max, no
+                  ):  # pragma: no cover - compiled
+    """krw and kro of one cell of rock type r at point j (see :func:`_phase_factors`)."""
+    if not capillary:
+        return water[r, j], oil[r, j]
+    log_sn = log_saturation_at_pressure(log_pc, log_entry, exponent[r])
+    if log_sn == 0.0:
+        return krw_max[r], 0.0
+    return krw_max[r] * np.exp(nw[r] * log_sn), kro_max[r] * np.exp(no[r] * np.log1p(-np.exp(log_sn)))
+
+
+@njit(parallel=True, cache=True)
+def _phase_factors(capillary, log_pc, log_entry, water, oil, rock, carries, exponent, krw_max, nw, kro_max, no,
+                   factor, low, high):  # pragma: no cover - compiled
+    """Per domain b, copy and cell: factor[b, 0] = 1, factor[b, 1 + j] = krw and
+    factor[b, 1 + P + j] = kro at point j: in the capillary limit from the cell's Sn at the
+    block's capillary pressure (logs of Pc (nb, P) and of the cells' entry pressures (nb, n)),
+    in the viscous limit from the tables water, oil (R, P) of each rock type; low and high
+    over the cells that carry flow (inf and -inf where none does)."""
+    nb, copies, n = factor.shape
+    points = (copies - 1) // 2
+    for b in prange(nb):
+        low[b, :] = np.inf
+        high[b, :] = -np.inf
+        for i in range(n):
+            factor[b, 0, i] = 1.0
+            if carries[b, i]:
+                low[b, 0] = 1.0
+                high[b, 0] = 1.0
+        for j in range(points):
+            for i in range(n):
+                w, o = _cell_factors(capillary, log_pc[b, j], log_entry[b, i], water, oil, rock[b, i], j, exponent,
+                                     krw_max, nw, kro_max, no)
+                factor[b, 1 + j, i] = w
+                factor[b, 1 + points + j, i] = o
+                if carries[b, i]:
+                    low[b, 1 + j] = min(low[b, 1 + j], w)
+                    high[b, 1 + j] = max(high[b, 1 + j], w)
+                    low[b, 1 + points + j] = min(low[b, 1 + points + j], o)
+                    high[b, 1 + points + j] = max(high[b, 1 + points + j], o)
+
+
+@njit(parallel=True, cache=True)
+def _scaled_copies(factor, kept, copies, k, out):  # pragma: no cover - compiled
+    """out[c] = factor[kept[c]] * k[kept[c] // copies], copy by copy: the permeability of the
+    kept copies (factor (nb * copies, n), k (nb, n), out (len(kept), n))."""
+    for c in prange(kept.size):
+        row, block = kept[c], kept[c] // copies
+        for i in range(out.shape[1]):
+            out[c, i] = factor[row, i] * k[block, i]
+
+
+def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high: np.ndarray, bc: str
                   ) -> tuple[np.ndarray, np.ndarray]:
-    """The batch's domains solved for single phase and each point's water and oil: k times
-    1, krw(Sw) and kro(Sw) of every cell, as one batch of nb (2P + 1) domains. A copy whose
-    factor is the same in every cell that carries flow (one rock type at one saturation,
-    or none flowing) scales the single-phase solution exactly: it takes the single-phase
-    result times the factor without a solve.
+    """The batch's domains solved for every copy of :func:`_batch_factors` (permeability
+    times the factor), as one batch of domains. A copy whose factor is the same in every
+    cell that carries flow (one rock type at one saturation, or none flowing) scales the
+    single-phase solution exactly: it takes the single-phase result times the factor,
+    without a solve.
 
     Returns
     -------
@@ -512,32 +578,33 @@ def _phase_solves(domain: LocalDomain, rock: np.ndarray, sn: np.ndarray, curves:
     worst : ndarray, (nb,)
         The largest relative residual of each block's solves.
     """
-    nb, points, n = sn.shape
-    rock = rock.reshape(nb, 1, n)
-    krw = curves.krw_max[rock] * sn ** curves.nw[rock]
-    kro = curves.kro_max[rock] * (1.0 - sn) ** curves.no[rock]
-    factor = np.concatenate([np.ones((nb, 1, n)), krw, kro], axis=1)
-    copies = factor.shape[1]
-    carries = sum(k.reshape(nb, 1, n) for k in domain.k) > 0
-    highest = np.where(carries, factor, -np.inf).max(axis=2)
-    uniform = highest == np.where(carries, factor, np.inf).min(axis=2)
+    nb, copies, n = factor.shape
+    flowing = np.isfinite(high[:, :1])
+    uniform = (low == high) | ~flowing
     solved = ~uniform
-    solved[:, 0] = carries.any(axis=(1, 2))
+    solved[:, 0] = flowing[:, 0]
     kept = np.flatnonzero(solved)
     block = kept // copies
-    factor = factor.reshape(nb * copies, n)[kept]
-    phases = LocalDomain(k=tuple((factor * k.reshape(nb, n)[block]).reshape((kept.size,) + domain.shape)
-                                 for k in domain.k),
-                         lengths=tuple(np.asarray(length)[block] for length in domain.lengths), target=domain.target)
+    shape = (kept.size,) + domain.shape
+    permeability = []
+    for k in domain.k:
+        out = np.empty((kept.size, n))
+        with first_call(_scaled_copies):
+            _scaled_copies(factor.reshape(nb * copies, n), kept, copies, np.ascontiguousarray(k).reshape(nb, n), out)
+        permeability.append(out.reshape(shape))
+    lx, ly, lz = domain.lengths  # lx, ly are lines broadcast along the other axes: copied as lines
+    lengths = (np.broadcast_to(lx[:, :, :1, :1][block], shape), np.broadcast_to(ly[:, :1, :, :1][block], shape),
+               lz[block])
+    phases = LocalDomain(k=tuple(permeability), lengths=lengths, target=domain.target)
     diagonal = np.zeros((nb * copies, 3))
     residual = np.zeros(nb * copies)
     if kept.size:
         tensor, residual[kept], _ = solve_domains(phases, bc)
         diagonal[kept] = np.einsum("bii->bi", tensor)
     diagonal = diagonal.reshape(nb, copies, 3)
-    scaled = uniform.copy()
+    scaled = uniform & flowing
     scaled[:, 0] = False
-    diagonal[scaled] = (np.where(np.isfinite(highest), highest, 0.0)[..., None] * diagonal[:, :1])[scaled]
+    diagonal[scaled] = (high[..., None] * diagonal[:, :1])[scaled]
     return diagonal, residual.reshape(nb, copies).max(axis=1)
 
 

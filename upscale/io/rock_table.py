@@ -114,7 +114,7 @@ def read_rock_table(path: str | os.PathLike) -> RockTable:
         raise InputError(f"{path}: unknown table or key '{unknown[0]}'; a rock table holds [fluids] and "
                          f"[rock.NAME] tables only")
     fluids = Fluids(**_checked(path, "fluids", _table(path, document, "fluids"), FLUID_RULES))
-    rocks = _table(path, document, "rock")
+    rocks = _table(path, document, "rock") if "rock" in document else {}
     if not rocks:
         raise InputError(f"{path}: no rock type; add a [rock.NAME] table per facies (NAME a flag meaning of the "
                          f"field's facies, or its code as [rock.\"1\"])")
