@@ -30,6 +30,7 @@ import pytest
 import xarray as xr
 
 import upscale
+from helpers import ROCKS as HELPER_ROCKS
 from upscale.io.reading import file_checksum
 from upscale.io.validation import validate
 
@@ -170,32 +171,7 @@ def with_args(*args):
 
 
 # Two-phase: the small field with facies (flag meanings sand, shale) beside a rock table.
-ROCKS = """\
-[fluids]
-water_viscosity = 0.5
-oil_viscosity = 2.0
-interfacial_tension = 0.025
-
-[rock.sand]
-swc = 0.12
-sor = 0.18
-krw_max = 0.35
-kro_max = 0.9
-nw = 2.5
-no = 2.0
-j_entry = 0.25
-pore_size_index = 2.0
-
-[rock.shale]
-swc = 0.3
-sor = 0.2
-krw_max = 0.1
-kro_max = 0.5
-nw = 3.0
-no = 3.0
-j_entry = 0.5
-pore_size_index = 1.0
-"""
+ROCKS = HELPER_ROCKS.replace('[rock."7"]', "[rock.shale]")
 
 
 def with_facies(ds):
@@ -312,23 +288,23 @@ CASES = [
     Case("rocks-missing", valid, ("rocks.toml", "rock table not found"), TWO_PHASE),
     Case("rocks-not-toml", two_phase_field("[fluids\nwater = "), ("rocks.toml", "not a valid TOML rock table"),
          TWO_PHASE),
-    Case("rocks-unknown-key", two_phase_field(rocks_with("nw = 2.5", "nw_exponent = 2.5")),
+    Case("rocks-unknown-key", two_phase_field(rocks_with("nw = 2.0", "nw_exponent = 2.0")),
          ("[rock.sand]", "unknown key 'nw_exponent'", "pore_size_index"), TWO_PHASE),
     Case("rocks-unknown-table", two_phase_field(ROCKS.replace("[fluids]", "[fluid]")),
          ("unknown table or key 'fluid'", "[fluids]"), TWO_PHASE),
-    Case("rocks-missing-key", two_phase_field(rocks_with("j_entry = 0.25\n", "")),
+    Case("rocks-missing-key", two_phase_field(rocks_with("j_entry = 0.3\n", "")),
          ("[rock.sand] misses j_entry", "Leverett J at the entry pressure"), TWO_PHASE),
-    Case("rocks-swc-in-percent", two_phase_field(rocks_with("swc = 0.12", "swc = 12")),
+    Case("rocks-swc-in-percent", two_phase_field(rocks_with("swc = 0.1", "swc = 12")),
          ("[rock.sand] swc = 12 is outside [0, 1)", "fraction of pore volume", "not percent"), TWO_PHASE),
-    Case("rocks-sor-negative", two_phase_field(rocks_with("sor = 0.18", "sor = -0.1")),
+    Case("rocks-sor-negative", two_phase_field(rocks_with("sor = 0.2", "sor = -0.1")),
          ("[rock.sand] sor = -0.1 is outside [0, 1)", "residual oil saturation"), TWO_PHASE),
-    Case("rocks-swc-plus-sor", two_phase_field(rocks_with("swc = 0.12", "swc = 0.85")),
-         ("[rock.sand] swc + sor = 1.03 must be below 1",), TWO_PHASE),
-    Case("rocks-value-text", two_phase_field(rocks_with("no = 2.0", 'no = "two"')),
+    Case("rocks-swc-plus-sor", two_phase_field(rocks_with("swc = 0.1", "swc = 0.85")),
+         ("[rock.sand] swc + sor = 1.05 must be below 1",), TWO_PHASE),
+    Case("rocks-value-text", two_phase_field(rocks_with("no = 2.5", 'no = "two"')),
          ("[rock.sand] no = 'two' must be a finite number", "Corey exponent of oil"), TWO_PHASE),
-    Case("rocks-viscosity-zero", two_phase_field(ROCKS.replace("water_viscosity = 0.5", "water_viscosity = 0")),
+    Case("rocks-viscosity-zero", two_phase_field(ROCKS.replace("water_viscosity = 0.6", "water_viscosity = 0")),
          ("[fluids] water_viscosity = 0 is outside (0, inf)", "cP"), TWO_PHASE),
-    Case("rocks-tension-in-dyn-per-cm", two_phase_field(ROCKS.replace("interfacial_tension = 0.025",
+    Case("rocks-tension-in-dyn-per-cm", two_phase_field(ROCKS.replace("interfacial_tension = 0.03",
                                                                       "interfacial_tension = 25")),
          ("interfacial_tension = 25 is outside (0, 1]", "N/m", "mN/m"), TWO_PHASE),
     Case("rocks-no-rock-type", two_phase_field(ROCKS.split("[rock.sand]")[0]), ("no rock type", "[rock.NAME]"),

@@ -17,36 +17,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 import xarray as xr
+from helpers import ROCKS
 
 import upscale
 from upscale.io.schema import fine_dataset
 
-ROCKS = """\
-[fluids]
-water_viscosity = 0.5
-oil_viscosity = 2.0
-interfacial_tension = 0.025
-
-[rock.sand]
-swc = 0.12
-sor = 0.18
-krw_max = 0.35
-kro_max = 0.9
-nw = 2.5
-no = 2.0
-j_entry = 0.25
-pore_size_index = 2.0
-
-[rock."7"]
-swc = 0.3
-sor = 0.2
-krw_max = 0.1
-kro_max = 0.5
-nw = 3.0
-no = 3.0
-j_entry = 0.5
-pore_size_index = 1.0
-"""
 
 
 def field(shape=(8, 6, 6), seed=2) -> xr.Dataset:

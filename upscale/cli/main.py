@@ -93,14 +93,19 @@ def _add_parallel(p: argparse.ArgumentParser) -> None:
                    "--memory is then the budget of each worker)")
 
 
-def _coarsen_options(p: argparse.ArgumentParser) -> None:
-    """Options of ``upscale coarsen``."""
-    p.add_argument("fine", help="fine field (NetCDF)")
-    p.add_argument("-o", "--output", required=True, help="coarse grid file to write (NetCDF)")
+def _add_blocks(p: argparse.ArgumentParser) -> None:
+    """The options of the coarse blocks: --ratio, --edges."""
     p.add_argument("--ratio", nargs=3, type=int, metavar=("RX", "RY", "RZ"),
                    help="fine cells per coarse cell along x, y, z (default 1 1 1 where no edges)")
     p.add_argument("--edges", action="append", type=_edges_argument, default=[], metavar="AXIS=E0,E1,...",
                    help="fine-index edges of the coarse cells along one axis, e.g. z=0,3,10,20 (repeatable)")
+
+
+def _coarsen_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale coarsen``."""
+    p.add_argument("fine", help="fine field (NetCDF)")
+    p.add_argument("-o", "--output", required=True, help="coarse grid file to write (NetCDF)")
+    _add_blocks(p)
     p.add_argument("--method", default="flow", help="arithmetic, harmonic, geometric, power or flow; "
                    "or one per axis: arithmetic,arithmetic,harmonic (default flow)")
     p.add_argument("--omega", type=float, help="exponent of the power average")
@@ -191,10 +196,7 @@ def _two_phase_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--rocks", required=True, metavar="ROCKS.toml", help="rock table: [fluids] and one [rock.NAME] "
                    "per facies (NAME a flag meaning of 'facies', or its code)")
     p.add_argument("-o", "--output", required=True, help="curve file to write (NetCDF; a coarse grid with the curves)")
-    p.add_argument("--ratio", nargs=3, type=int, metavar=("RX", "RY", "RZ"),
-                   help="fine cells per coarse cell along x, y, z (default 1 1 1 where no edges)")
-    p.add_argument("--edges", action="append", type=_edges_argument, default=[], metavar="AXIS=E0,E1,...",
-                   help="fine-index edges of the coarse cells along one axis, e.g. z=0,3,10,20 (repeatable)")
+    _add_blocks(p)
     p.add_argument("--limit", default="capillary", help="flow regime: capillary (capillary equilibrium in each "
                    "block: low rates, small blocks; the default) or viscous (every cell at one fractional flow: "
                    "high rates)")
