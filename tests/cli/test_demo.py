@@ -44,12 +44,21 @@ def test_demo_command_runs_end_to_end(tmp_path):
     summary = (tmp_path / "reports" / "demo" / "summary.txt").read_text()
     assert "Caution" in summary and "qualified engineers" in summary
     listed = [line.split(maxsplit=1)[1] for line in done.stdout.splitlines() if line.startswith("  ")]
-    assert len(listed) == 9 and all(Path(p).exists() for p in listed)
+    assert len(listed) == 11 and all(Path(p).exists() for p in listed)
     # The demo ends with the full report and prints where it is.
     report = tmp_path / "reports" / "demo" / "index.html"
     assert done.stdout.splitlines()[-1].startswith(f"report: {report}")
     page = report.read_text()
-    assert page.count("<img") >= 8 and "qualified" in page
+    assert page.count("<img") >= 9 and "qualified" in page
+    # the two-phase curves of the demo's own rock table, and their section in the report
+    curves = xr.open_dataset(tmp_path / "fields" / "demo_curves.nc")
+    assert curves.attrs["two_phase_limit"] == "capillary" and curves.sizes["saturation_point"] == 20
+    assert "Two-phase curves (capillary limit)" in page and "Capillary limit: capillary equilibrium" in page
+    # every fine cell of the demo's four facies is at least swc 0.12 and sor 0.18 of its rock
+    # (the demo table): so is every block, a pore-volume-weighted mean of its cells
+    active = curves["pore_volume"].values > 0
+    assert curves["swc"].values[active].min() >= 0.12 - 1e-12 and curves["sor"].values[active].min() >= 0.18 - 1e-12
+    assert "Two-phase curves" in summary
     metrics = json.loads((tmp_path / "reports" / "demo" / "metrics.json").read_text())
     for axis in "xyz":
         g = metrics["global"][axis]

@@ -487,7 +487,7 @@ def _two_phase(args) -> int:
     chunked = args.box is not None or plan.chunked(args.fine, "flow", False)
     with cluster(workers=args.workers, scheduler=args.scheduler):
         fine = plan.open(args.fine) if chunked else open_field(args.fine)
-        with progress_bar(0 if chunked else 2 * _block_count(fine, options), "phase solves", args.quiet) as update:
+        with progress_bar(0 if chunked else _block_count(fine, options), "phase solves", args.quiet) as update:
             curves = two_phase(fine, table, progress=None if chunked else update, memory=plan.box_memory,
                                box=args.box, **options)
     write(curves, out)

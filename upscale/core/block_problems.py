@@ -631,9 +631,10 @@ class LocalProblem:
         domain, n = self.domain, self.n
         nb = domain.count
         diag, touch, connected = _diagonal(domain, self.couplings, self.coupling_sum, boundary, self.components)
-        rhs = np.empty((nb, len(cases), n))
+        rhs = np.zeros((nb, len(cases), n))
+        shaped = rhs.reshape((nb, len(cases)) + domain.shape)  # a view: filled in place
         for column, case in enumerate(cases):
-            rhs[:, column] = _right_hand_side(domain, self.couplings, boundary, bc, case).reshape(nb, n)
+            _right_hand_side(domain, self.couplings, boundary, bc, case, shaped[:, column])
         return diag.reshape(nb, n), touch, connected, rhs
 
     def solve(self, boundary: Boundary, bc: str, cases: tuple[int, ...]) -> Solved:
@@ -899,9 +900,9 @@ def _outflow_weights(problem: LocalProblem, axis: int) -> np.ndarray:
     return outflow.reshape(problem.domain.count, problem.n)
 
 
-def _right_hand_side(domain, couplings: Couplings, boundary: Boundary, bc: str, case: int) -> np.ndarray:
-    """Right-hand side (nb, sx, sy, sz) of one case: the Dirichlet and periodic jump terms."""
-    rhs = np.zeros(domain.k[0].shape)
+def _right_hand_side(domain, couplings: Couplings, boundary: Boundary, bc: str, case: int, rhs: np.ndarray) -> None:
+    """Add the right-hand side of one case to ``rhs`` (nb, sx, sy, sz, zeros on entry): the
+    Dirichlet and periodic jump terms."""
     for a in range(3):
         n = domain.shape[a]
         h = couplings.half[a]
@@ -912,7 +913,6 @@ def _right_hand_side(domain, couplings: Couplings, boundary: Boundary, bc: str, 
             t = couplings.wrap[a] * _wrap_jump(domain, case, a)
             _take(rhs, a, n - 1)[...] -= t
             _take(rhs, a, 0)[...] += t
-    return rhs
 
 
 def _sealed_unbordered(domain, q, through, d, velocity, gradient):

@@ -32,7 +32,7 @@ import numpy as np
 from numba import njit, prange
 
 from .._runtime import first_call
-from .block_problems import BATCH_BYTES, LocalDomain, local_domains, solve_domains
+from .block_problems import BATCH_BYTES, FlowResult, LocalDomain, local_domains, solve_domains
 from .grid import AXES, GridArrays
 from .partition import Partition, block_groups
 from .rock_curves import Fluids, RockCurves, leverett_scale, log_saturation_at_pressure
@@ -195,8 +195,8 @@ def two_phase_variables(cells: GridArrays, rock: np.ndarray, partition: Partitio
     budget : int
         Bytes one batch of local solves may hold (all points and phases together).
     progress : callable, optional
-        Receives the number of blocks finished by each batch, once for the single-phase
-        solves and once for the phase solves.
+        Receives the number of blocks finished by each batch of solves (single phase and
+        all phases and points together).
 
     Returns
     -------
@@ -206,11 +206,11 @@ def two_phase_variables(cells: GridArrays, rock: np.ndarray, partition: Partitio
         point (box shape + (P,)) ``sw``, ``pc`` (bar; infinite at the connate end of the
         capillary limit), ``krw_x`` ... ``kro_z``.
     """
-    out = block_variables(cells, partition, blocks, recipe.single, progress=progress, budget=budget)
     rocks = cell_rocks(cells, rock, recipe.curves, recipe.fluids)
     states = saturation_states(cells, rocks, partition, blocks, recipe)
-    water, oil, residual = phase_permeability_ratios(cells, rocks, partition, blocks, recipe, states, budget,
-                                                     progress)
+    water, oil, residual, single = phase_permeability_ratios(cells, rocks, partition, blocks, recipe, states, budget,
+                                                             progress)
+    out = block_variables(cells, partition, blocks, recipe.single, budget=budget, flow=single)
     out.update(swc=states.ends[..., 0], sor=states.ends[..., 1], sw=states.sw, pc=states.pc,
                two_phase_residual=residual)
     for axis, name in enumerate(AXES):
@@ -452,27 +452,33 @@ def phase_permeability_ratios(cells: GridArrays, rocks: CellRocks, partition: Pa
         krw and kro per direction (0 where the block does not flow single-phase).
     residual : ndarray, (bx, by, bz)
         The largest relative residual of the block's phase solves.
+    single : FlowResult
+        The single-phase solves (over ``partition``, the box's blocks filled), as
+        :func:`~upscale.core.block_problems.flow_tensors` gives them.
     """
     points = recipe.points
     copies = 2 * points + 1  # single phase, water at each point, oil at each point
     tensor = np.zeros(partition.shape + (copies, 3))
     residual = np.zeros(partition.shape)
+    single = FlowResult(np.zeros(partition.shape + (3, 3)), np.zeros(partition.shape), np.zeros(partition.shape))
     state = _window_states(partition, blocks, states, recipe)
     k = cells.flow_permeability()
     only = tuple(np.arange(b.start, b.stop) for b in blocks)
     for batch, domain in local_domains(cells, partition, recipe.single.border, budget=max(budget // copies, 1),
                                        only=only, permeability=k):
-        diagonal, worst = _phase_solves(domain, *_batch_factors(batch, domain, rocks, state, recipe),
-                                        recipe.single.local_bc)
+        diagonal, worst, solved = _phase_solves(domain, *_batch_factors(batch, domain, rocks, state, recipe),
+                                                recipe.single.local_bc)
         batch.scatter(tensor, diagonal)
         batch.scatter(residual, worst)
+        for whole, part in zip((single.tensor, single.residual, single.asymmetry), solved):
+            batch.scatter(whole, part)
         if progress is not None:
             progress(batch.count)
     tensor, residual = tensor[blocks], residual[blocks]
-    single = tensor[..., :1, :]
-    water = divide_or_zero(tensor[..., 1:points + 1, :], single)
-    oil = divide_or_zero(tensor[..., points + 1:, :], single)
-    return water, oil, residual
+    one = tensor[..., :1, :]
+    water = divide_or_zero(tensor[..., 1:points + 1, :], one)
+    oil = divide_or_zero(tensor[..., points + 1:, :], one)
+    return water, oil, residual, single
 
 
 def _window_states(partition: Partition, blocks, states: States, recipe: TwoPhaseRecipe) -> np.ndarray:
@@ -577,6 +583,9 @@ def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high
         Effective permeability per copy and direction, mD.
     worst : ndarray, (nb,)
         The largest relative residual of each block's solves.
+    single : (ndarray, ndarray, ndarray)
+        The single-phase copy's tensor (nb, 3, 3), mD, residual and asymmetry (nb,): 0 for
+        domains that carry no flow.
     """
     nb, copies, n = factor.shape
     flowing = np.isfinite(high[:, :1])
@@ -598,14 +607,18 @@ def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high
     phases = LocalDomain(k=tuple(permeability), lengths=lengths, target=domain.target)
     diagonal = np.zeros((nb * copies, 3))
     residual = np.zeros(nb * copies)
+    single = (np.zeros((nb, 3, 3)), np.zeros(nb), np.zeros(nb))
     if kept.size:
-        tensor, residual[kept], _ = solve_domains(phases, bc)
+        tensor, residual[kept], asymmetry = solve_domains(phases, bc)
         diagonal[kept] = np.einsum("bii->bi", tensor)
+        first = kept % copies == 0
+        for whole, part in zip(single, (tensor, residual[kept], asymmetry)):
+            whole[block[first]] = part[first]
     diagonal = diagonal.reshape(nb, copies, 3)
     scaled = uniform & flowing
     scaled[:, 0] = False
     diagonal[scaled] = (high[..., None] * diagonal[:, :1])[scaled]
-    return diagonal, residual.reshape(nb, copies).max(axis=1)
+    return diagonal, residual.reshape(nb, copies).max(axis=1), single
 
 
 def block_codes(values: np.ndarray, pore_volume: np.ndarray, partition: Partition) -> np.ndarray:

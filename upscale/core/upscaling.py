@@ -14,7 +14,7 @@ from typing import ClassVar
 import numpy as np
 
 from ..errors import InputError
-from .block_problems import BATCH_BYTES, BOUNDARY_CONDITIONS, flow_tensors
+from .block_problems import BATCH_BYTES, BOUNDARY_CONDITIONS, FlowResult, flow_tensors
 from .face_problems import flow_transmissibility, sealed_and_face_flow
 from .grid import AXES, GridArrays
 from .local_global import (
@@ -229,7 +229,8 @@ def _store_global_model(variables: dict, model: CoarseModel, scale: float) -> No
 
 
 def block_variables(cells: GridArrays, partition: Partition, blocks: tuple[slice, slice, slice],
-                    recipe: Recipe, progress=None, budget: int = BATCH_BYTES) -> dict[str, np.ndarray]:
+                    recipe: Recipe, progress=None, budget: int = BATCH_BYTES, flow: FlowResult | None = None
+                    ) -> dict[str, np.ndarray]:
     """Everything a coarse grid holds per block, for a box of whole blocks.
 
     Parameters
@@ -246,6 +247,9 @@ def block_variables(cells: GridArrays, partition: Partition, blocks: tuple[slice
         Receives the number of blocks finished by each batch of local solves.
     budget : int
         Bytes one batch of local solves may hold.
+    flow : FlowResult, optional
+        The recipe's flow-based block tensors when already solved (over ``partition``; a
+        recipe without multipliers): not solved again.
 
     Returns
     -------
@@ -262,7 +266,7 @@ def block_variables(cells: GridArrays, partition: Partition, blocks: tuple[slice
     core, core_partition = cells.crop(box), partition.crop(blocks)
     solves = dict(border=recipe.border, progress=progress, budget=budget,
                   only=tuple(np.arange(b.start, b.stop) for b in blocks))
-    flow, faces = _local_solves(cells, partition, recipe, solves)
+    flow, faces = (flow, None) if flow is not None else _local_solves(cells, partition, recipe, solves)
     volumes = _volumes(core, core_partition)
     k = _effective_tensors(core, core_partition, recipe, None if flow is None else flow.tensor[blocks])
     k = np.where(volumes["active"][..., None, None], k, 0.0)

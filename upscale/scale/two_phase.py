@@ -54,8 +54,7 @@ def two_phase(fine: xr.Dataset, rocks: str | os.PathLike | RockTable, ratio=None
         An integer fine variable (e.g. ``facies``): also one curve set per region of blocks
         sharing the code that holds most of their pore volume, pore-volume weighted.
     progress : callable, optional
-        In-memory fields: receives the number of blocks finished by each batch of solves
-        (twice the number of blocks in all).
+        In-memory fields: receives the number of blocks finished by each batch of solves.
     memory : int, optional
         Lazy fields: bytes a process holding one box may use.
     box : tuple of int, optional
