@@ -25,6 +25,14 @@ def rock(swc=0.2, sor=0.2, krw_max=0.4, kro_max=0.8, nw=2.0, no=2.0, j_entry=0.5
 ZERO = np.zeros(1, dtype=int)
 
 
+def fractional_flow(r, sw, fluids):
+    """fw = (krw / mu_w) / (krw / mu_w + kro / mu_o), 0 where neither phase flows."""
+    rocks = np.zeros(np.shape(sw), dtype=int)
+    water = r.water(sw, rocks) / fluids.water_viscosity
+    total = water + r.oil(sw, rocks) / fluids.oil_viscosity
+    return np.divide(water, total, out=np.zeros(np.shape(sw)), where=total > 0)
+
+
 def test_corey_and_brooks_corey_at_hand_values():
     r = rock(nw=3.0, no=1.5, pore_size_index=4.0)
     sw = np.array([0.2, 0.35, 0.5, 0.8])      # Sn = 0, 0.25, 0.5, 1
@@ -79,7 +87,7 @@ def test_saturation_at_fractional_flow_against_the_closed_form(n):
     got = r.saturation_at_fractional_flow(flow, fluids)[0]
     np.testing.assert_allclose(got[1:-1], 0.2 + 0.6 * sn, rtol=0, atol=1e-12)
     assert got[0] == 0.2 and got[-1] == 0.8
-    np.testing.assert_allclose(r.fractional_flow(got, np.zeros(7, dtype=int), fluids), flow, atol=1e-12)
+    np.testing.assert_allclose(fractional_flow(r, got, fluids), flow, atol=1e-12)
 
 
 @settings(max_examples=50, deadline=None)
@@ -97,4 +105,4 @@ def test_rock_curves_are_monotone(swc, sor, kw, ko, nw, no, lam):
     entered = sw > swc  # J is infinite at Sn = 0
     assert np.all(np.isinf(j[~entered])) and np.all(np.diff(j[entered]) <= 0)
     fluids = Fluids(0.5, 2.0, 0.02)
-    assert np.all(np.diff(r.fractional_flow(sw, rocks, fluids)) >= -1e-15)
+    assert np.all(np.diff(fractional_flow(r, sw, fluids)) >= -1e-15)

@@ -12,7 +12,6 @@ import hashlib
 import re
 import subprocess
 import sys
-from pathlib import Path
 
 import numpy as np
 import pytest

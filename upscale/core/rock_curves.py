@@ -116,12 +116,6 @@ class RockCurves:
         with np.errstate(divide="ignore"):
             return self.j_entry[rock] * sn ** (-1.0 / self.pore_size_index[rock])
 
-    def fractional_flow(self, sw: np.ndarray, rock: np.ndarray, fluids: Fluids) -> np.ndarray:
-        """Fractional flow of water fw at Sw (0 where neither phase flows)."""
-        water = self.water(sw, rock) / fluids.water_viscosity
-        total = water + self.oil(sw, rock) / fluids.oil_viscosity
-        return np.divide(water, total, out=np.zeros(np.shape(total)), where=total > 0)
-
     def saturation_at_fractional_flow(self, flow: np.ndarray, fluids: Fluids) -> np.ndarray:
         """Water saturation of every rock type at which fw equals each given value.
 
