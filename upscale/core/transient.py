@@ -54,7 +54,7 @@ from scipy.sparse.csgraph import connected_components
 
 from ..errors import InputError
 from .grid import AXES, GridArrays
-from .multigrid import VCycle
+from .multigrid import VCycle, scaled_near_null
 from .pressure import DIRECT_LIMIT, refined_direct, symmetric_lu, unit_diagonal
 from .two_point import check_faces, transmissibilities
 from .units import METRIC_TRANSMISSIBILITY
@@ -522,7 +522,7 @@ class _StepSolver:
                 return known, entry
         A = (self.K + sp.diags(self.storage / dt)).tocsr()
         scaled, scale = unit_diagonal(A)
-        solver = symmetric_lu(scaled) if self.direct else VCycle(scaled)
+        solver = symmetric_lu(scaled) if self.direct else VCycle(scaled, scaled_near_null(scale))
         entry = (A, scaled, scale, solver)
         self.cache[dt] = entry
         self.factorisations += 1
