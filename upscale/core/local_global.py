@@ -45,7 +45,7 @@ from .block_problems import BATCH_BYTES, LocalProblem, local_domains
 from .grid import GridArrays
 from .partition import Partition
 from .pressure import boundary_half, fine_model_check, whole_model_permeability
-from .two_point import cell_geometry, transmissibilities
+from .two_point import cell_geometry, pinch_out_faces, transmissibilities
 
 #: a face whose largest coarse pressure difference over the flows is below this (of the
 #: unit drop) has no flow to fit: it keeps its local value
@@ -58,23 +58,38 @@ GLOBAL_SOLVES = ("coarse", "fine")
 class CoarseModel:
     """A coarse two-point grid: cell sizes dx (NX,), dy (NY,), dz (NX, NY, NZ) in m, face
     transmissibilities per axis (N - 1 along it) and half-cell transmissibilities per axis
-    (NX, NY, NZ), both mD*m."""
+    (NX, NY, NZ), both mD*m; with ``pinch_connections``, vertical flow passes across cells
+    of dz = 0 (:meth:`two_point`)."""
 
     dx: np.ndarray
     dy: np.ndarray
     dz: np.ndarray
     faces: list
     halves: list
+    pinch_connections: bool = False
 
     def with_values(self, faces: list, halves: list) -> "CoarseModel":
-        return CoarseModel(self.dx, self.dy, self.dz, faces, halves)
+        return CoarseModel(self.dx, self.dy, self.dz, faces, halves, self.pinch_connections)
+
+    def two_point(self) -> tuple[list, list]:
+        """The faces and halves solved: with pinch-out connections, the z faces beside a
+        cell of dz = 0 and the halves of such cells at a column end are those of
+        :func:`upscale.core.two_point.pinch_out_faces` of the halves (no face problem
+        measures a block without volume); else the model's own."""
+        pinched = self.dz == 0
+        if not self.pinch_connections or not pinched.any() or self.dz.shape[2] < 2:
+            return self.faces, self.halves
+        z_faces, z_half = pinch_out_faces(self.halves[2], pinched)
+        beside = pinched[..., :-1] | pinched[..., 1:]
+        return self.faces[:2] + [np.where(beside, z_faces, self.faces[2])], self.halves[:2] + [z_half]
 
     def axis_flows(self, tolerance: float = 1e-10) -> tuple[list[np.ndarray], np.ndarray]:
         """Pressures (NX, NY, NZ) of the unit-drop flows along x, y, z (0 where a cell
         reaches neither constant-pressure face) and their rates (3,), mD*m."""
         pressures, rates = [], []
+        faces, halves = self.two_point()
         for axis in range(3):
-            result = whole_model_permeability(self.faces, boundary_half(self.halves[axis], axis), self.dx, self.dy,
+            result = whole_model_permeability(faces, boundary_half(halves[axis], axis), self.dx, self.dy,
                                               self.dz, axis, tolerance=tolerance)
             pressures.append(np.nan_to_num(result["pressure"]))
             rates.append(result["rate"])
@@ -289,7 +304,8 @@ def fine_face_fluxes(cells: GridArrays, partition: Partition, tolerance: float =
     """The fine fluxes (mD*m) of the fine whole-model unit-drop flows along x, y and z
     through every interior coarse face, and through the model faces of each axis's own
     flow per coarse block, from fine solves."""
-    _, fine_faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)
+    _, fine_faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz,
+                                       cells.pinch_connections)
     solved = [fine_model_check(cells, axis, tolerance=tolerance) for axis in range(3)]
     pressures = [np.nan_to_num(s["pressure"]) for s in solved]
     faces = [np.stack([plane_fluxes(fine_faces[axis], p, partition, axis) for p in pressures]) for axis in range(3)]
