@@ -45,7 +45,7 @@ from .block_problems import BATCH_BYTES, LocalProblem, local_domains
 from .grid import GridArrays
 from .partition import Partition
 from .pressure import boundary_half, fine_model_check, whole_model_permeability
-from .two_point import cell_geometry, pinch_out_faces, transmissibilities
+from .two_point import cell_geometry, pinch_out_faces, run_ends, transmissibilities
 
 #: a face whose largest coarse pressure difference over the flows is below this (of the
 #: unit drop) has no flow to fit: it keeps its local value
@@ -83,6 +83,25 @@ class CoarseModel:
         beside = pinched[..., :-1] | pinched[..., 1:]
         return self.faces[:2] + [np.where(beside, z_faces, self.faces[2])], self.halves[:2] + [z_half]
 
+    def _on_pinch_outs(self, p: np.ndarray, z_faces: np.ndarray) -> np.ndarray:
+        """Pressures with those of the cells of dz = 0 on a pinch-out connection set to the
+        pressure on the face they stand for, between the real cells a above and b below:
+        p_b + q / h_b (p_a - q / h_a at the column's bottom), q the flux down the run (the
+        nodes' own pressures depend on how the run shares its resistance out)."""
+        pinched = self.dz == 0
+        if not self.pinch_connections or not pinched.any() or p.shape[2] < 2:
+            return p
+        above, below = run_ends(pinched)
+        n, h = p.shape[2], self.halves[2]
+        down = np.concatenate([z_faces * (p[..., :-1] - p[..., 1:]), np.zeros_like(p[..., :1])], axis=2)
+        up = np.concatenate([np.zeros_like(p[..., :1]), down[..., :-1]], axis=2)   # the flux into each cell
+        q = np.where(np.arange(n) < n - 1, down, up)
+        side, sign = np.where(below < n, below, above), np.where(below < n, 1.0, -1.0)
+        p_side = np.take_along_axis(p, np.clip(side, 0, n - 1), axis=2)
+        h_side = np.take_along_axis(h, np.clip(side, 0, n - 1), axis=2)
+        face = p_side + sign * np.divide(q, h_side, out=np.zeros_like(q), where=h_side > 0)
+        return np.where(pinched & (side >= 0) & (side < n), face, p)
+
     def axis_flows(self, tolerance: float = 1e-10) -> tuple[list[np.ndarray], np.ndarray]:
         """Pressures (NX, NY, NZ) of the unit-drop flows along x, y, z (0 where a cell
         reaches neither constant-pressure face) and their rates (3,), mD*m."""
@@ -91,7 +110,7 @@ class CoarseModel:
         for axis in range(3):
             result = whole_model_permeability(faces, boundary_half(halves[axis], axis), self.dx, self.dy,
                                               self.dz, axis, tolerance=tolerance)
-            pressures.append(np.nan_to_num(result["pressure"]))
+            pressures.append(self._on_pinch_outs(np.nan_to_num(result["pressure"]), faces[2]))
             rates.append(result["rate"])
         return pressures, np.array(rates)
 
@@ -141,6 +160,10 @@ class Measured:
         low, high = [], []
         for axis, s in enumerate(solved):
             n = s.shape[axis]
+            if new.low[axis] is None:  # one block along the axis: no model-face fluxes measured
+                low.append(None)
+                high.append(None)
+                continue
             edge_low, edge_high = np.take(s, [0], axis=axis), np.take(s, [n - 1], axis=axis)
             low.append(np.where(edge_low, new.low[axis], self.low[axis]))
             high.append(np.where(edge_high, new.high[axis], self.high[axis]))
@@ -293,7 +316,8 @@ def _still_moving(moved: list[np.ndarray], fluxes: list[np.ndarray], options: Gl
         select = (change > options.moving) | busy
         edge = [slice(None)] * 3
         edge[axis] = [0, -1] if select.shape[axis] > 1 else [0]
-        select[tuple(edge)] = True
+        if select.shape[axis]:  # one block along the axis: no face at all
+            select[tuple(edge)] = True
         out.append(select)
     return out
 

@@ -149,9 +149,19 @@ def transmissibilities(k: tuple[np.ndarray, np.ndarray, np.ndarray], dx, dy, dz,
     return half, faces + [z_faces]
 
 
-def _run_ends(pinched: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Per cell of columns along the last axis, the index of the nearest real (not pinched)
-    cell at or above it (-1: none, the column's top end) and at or below it (n: none)."""
+def run_ends(pinched: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The real cells around runs of pinched cells, in columns along the last axis.
+
+    Parameters
+    ----------
+    pinched : ndarray of bool, (..., nz)
+
+    Returns
+    -------
+    above, below : ndarray of int, (..., nz)
+        Per cell, the index of the nearest real (not pinched) cell at or above it (-1:
+        none, the column's top end) and at or below it (nz: none).
+    """
     n = pinched.shape[-1]
     index = np.arange(n)
     above = np.maximum.accumulate(np.where(pinched, -1, index), axis=-1)
@@ -209,7 +219,7 @@ def pinch_out_faces(half: np.ndarray, pinched: np.ndarray) -> tuple[np.ndarray, 
     """
     if not np.any(pinched):
         return harmonic_pair(half[..., :-1], half[..., 1:]), half
-    above, below = _run_ends(pinched)
+    above, below = run_ends(pinched)
     faces = (below[..., 1:] - above[..., :-1]) * _joined(half, above[..., :-1], below[..., 1:])
     ends = half.copy()
     top, bottom = below[..., :1], above[..., -1:]
