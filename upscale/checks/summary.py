@@ -98,8 +98,9 @@ def _pinch_outs(ds: xr.Dataset, fine) -> dict:
     continued = np.concatenate([np.zeros_like(pinched[..., :1]), pinched[..., :-1]], axis=2)  # pinched above
     runs = int(np.count_nonzero(joined & ~continued))
     settings = pinch_settings(ds)
-    return {**settings, "runs_between_active": runs, "cells_in_those_runs": int(np.count_nonzero(joined)),
-            "connections_made": runs if settings["connections"] else 0}
+    made = runs if settings["connections"] else 0
+    return {**settings, "connections": "yes" if settings["connections"] else "no", "runs_between_active": runs,
+            "cells_in_those_runs": int(np.count_nonzero(joined)), "connections_made": made}
 
 
 def field_summary(ds: xr.Dataset) -> dict:
@@ -115,7 +116,7 @@ def field_summary(ds: xr.Dataset) -> dict:
     dict
         ``shape`` [nx, ny, nz]; ``cells``, ``active_cells``, ``pinched_cells`` (dz == 0,
         active or not), ``pinched_between_active`` (those with an active cell above and
-        below in their column); ``pinch_outs``: the settings (``connections``,
+        below in their column); ``pinch_outs``: the settings (``connections`` 'yes' or 'no',
         ``thickness``, ``units``: :func:`upscale.io.pinch_outs.pinch_settings`), the runs of
         pinched cells with an active cell just above and below (``runs_between_active``,
         ``cells_in_those_runs``) and ``connections_made`` (those runs, or 0 without

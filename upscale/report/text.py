@@ -35,7 +35,7 @@ def _pinch_note(pinch: dict) -> str:
     runs, cells = pinch["runs_between_active"], pinch["cells_in_those_runs"]
     if not runs:
         return f" (dz = 0{threshold})"
-    if pinch["connections"]:
+    if pinch["connections"] == "yes":
         return (f" (dz = 0{threshold}), {cells} of them between active cells of their column: {runs} pinch-out "
                 f"connection(s) made, vertical flow passes across them")
     return (f" (dz = 0{threshold}), {cells} of them between active cells of their column: no flow crosses them "
