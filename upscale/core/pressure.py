@@ -489,6 +489,6 @@ def fine_model_check(cells: GridArrays, axis, tolerance: float = 1e-10, direct_l
         'pressure', 'solver', ...).
     """
     axis = axis_index(axis)
-    half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)
+    half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz, cells.pinch_connections)
     return whole_model_permeability(faces, boundary_half(half[axis], axis), cells.dx, cells.dy,
                                     cells.dz, axis, tolerance=tolerance, direct_limit=direct_limit)

@@ -215,7 +215,7 @@ class TransientSystem:
         """
         drainage = check_drainage(drainage)
         k = cells.flow_permeability()
-        half, faces = transmissibilities(k, cells.dx, cells.dy, cells.dz)
+        half, faces = transmissibilities(k, cells.dx, cells.dy, cells.dz, cells.pinch_connections)
         faces = [METRIC_TRANSMISSIBILITY * f for f in faces]
         description = {"model": "fine", "drainage": drainage}
         if drainage == "face":

@@ -26,6 +26,7 @@ import xarray as xr
 from ..core.grid import AXES
 from ..core.partition import Partition
 from ..errors import InputError
+from ..io.schema import pinch_connections
 from .cluster import active_client
 from .memory import BOX_BYTES_PER_CELL, box_cells, default_memory
 
@@ -129,18 +130,21 @@ def _box_tasks(fine: xr.Dataset, partition: Partition, recipe, boxes, halo, budg
         window, window_partition, blocks = partition.window(tuple(boxes[a][i] for a, i in enumerate(index)), *halo)
         values = {n: v[window].rechunk(-1).to_delayed(optimize_graph=False).ravel()[0] for n, v in cube.items()}
         task = dask.delayed(_box_task, pure=True)(lines["dx"][window[0]], lines["dy"][window[1]],
-                                                  window_partition, blocks, recipe, budget, **values)
+                                                  window_partition, blocks, recipe, budget, pinch_connections(fine),
+                                                  **values)
         tasks[index] = dask.delayed(_run_graph, pure=True)(_pack(task))
     return tasks
 
 
-def _box_task(dx, dy, window_partition, blocks, recipe, budget: int, **values) -> dict:
-    """The task of one box: its window's cells as GridArrays, then block_variables."""
+def _box_task(dx, dy, window_partition, blocks, recipe, budget: int, pinch: bool, **values) -> dict:
+    """The task of one box: its window's cells as GridArrays (``pinch``: with pinch-out
+    connections), then block_variables."""
     from ..core.grid import GridArrays
     from ..core.upscaling import block_variables
 
     values["active"] = np.asarray(values["active"]).astype(bool)
-    cells = GridArrays(dx=dx, dy=dy, **{n: np.asarray(v, dtype=v.dtype) for n, v in values.items()})
+    cells = GridArrays(dx=dx, dy=dy, pinch_connections=pinch,
+                       **{n: np.asarray(v, dtype=v.dtype) for n, v in values.items()})
     return block_variables(cells, window_partition, blocks, recipe, budget=budget)
 
 
