@@ -297,3 +297,51 @@ def test_bordered_faces_against_the_drop_take_their_value_without_a_border(caplo
     plain, _ = flow_transmissibility(cells, partition, border=0)
     assert all(np.all(np.isfinite(t)) and np.all(t >= 0) for t in bordered)
     assert sum(int(np.sum(b == p)) for b, p in zip(bordered, plain)) >= count
+
+
+def test_bordered_face_value_against_an_independent_solve():
+    # The face between blocks (0, 1, 0) and (1, 1, 0) of a 6 x 6 x 4 lognormal field in
+    # blocks of 2 x 2 x 2, ring of 1 cell: the local problem is the fine cells x 0..4,
+    # y 1..4, z 0..2 (the ring clipped at the model's edges), sealed sides, unit drop
+    # along x. Solved here by tests/flow_reference.py (its own assembly, SciPy's SuperLU);
+    # T = C Q / (p1 - p2) with Q the flow through the shared face over the target's own
+    # cross-section and p1, p2 the bulk-volume means of the two blocks (DEVELOPERS.md:
+    # Chen, Durlofsky, Gerritsen & Wen 2003). Both are direct solves of a small system of
+    # moderate contrast: agreement to 1e-9.
+    from flow_reference import half_transmissibilities, sealed_problem
+
+    rng = np.random.default_rng(12)
+    shape = (6, 6, 4)
+    k = lognormal(shape, 1.0, 12)
+    dx, dy, dz = rng.uniform(1, 3, 6), rng.uniform(1, 3, 6), rng.uniform(0.5, 2.0, shape)
+    cells = make_cells(k, dx=dx, dy=dy, dz=dz)
+    faces, _ = flow_transmissibility(cells, make_partition(shape, ratio=(2, 2, 2)), border=1)
+    window = np.s_[0:5, 1:5, 0:3]
+    sub = (k[window],) * 3
+    p = sealed_problem(sub, dx[0:5], dy[1:5], dz[window], 0).pressure()
+    h = half_transmissibilities(sub, dx[0:5], dy[1:5], dz[window])[0]
+    across = np.s_[1:3, 0:2]                       # the target's y and z inside the window
+    t = h[1][across] * h[2][across] / (h[1][across] + h[2][across])
+    rate = np.sum(t * (p[1][across] - p[2][across]))
+    volume = (dx[0:5, None, None] * dy[None, 1:5, None] * dz[window])
+    first, second = (slice(0, 2),) + across, (slice(2, 4),) + across
+    drop = np.average(p[first], weights=volume[first]) - np.average(p[second], weights=volume[second])
+    assert faces[0][0, 1, 0] == pytest.approx(METRIC_TRANSMISSIBILITY * rate / drop, rel=1e-9)
+
+
+def test_one_pass_with_closed_cells_in_some_domains_only():
+    # Four blocks along x in one batch of face problems; closed cells (k = 0) only in the
+    # third block, so only the face problems that hold it are searched for pockets, and
+    # only one of them leads with it. One pass equals the two separate passes (rounding,
+    # as the hypothesis test above), the closed cells carrying nothing.
+    k = lognormal((8, 2, 2), 1.0, 17)
+    k[4, 0, 0] = k[5, 1, 1] = 0.0
+    cells = make_cells(k)
+    partition = make_partition(k.shape, ratio=(2, 2, 2))
+    together, faces, _ = sealed_and_face_flow(cells, partition)
+    separate = flow_tensors(cells, partition, "sealed")
+    alone, _ = flow_transmissibility(cells, partition)
+    np.testing.assert_allclose(together.tensor, separate.tensor, rtol=1e-9, atol=0)
+    for a, b in zip(faces, alone):
+        np.testing.assert_allclose(a, b, rtol=1e-9, atol=0)
+    assert np.all(np.einsum("...ii->...i", together.tensor) > 0)
