@@ -152,24 +152,29 @@ def _is_equivalent(entry: dict, function: str, removed: str, added: str) -> bool
     return entry["function"] == function and entry["removed"] == removed and entry["added"] == added
 
 
-def run_module(module: str, tests: list[str], children: int, keep: bool) -> dict:
-    work = Path(tempfile.mkdtemp(prefix=f"mutation-{module}-"))
-    _copy_project(work)
-    _configure(work, module, tests)
+def _mutmut(work: Path, names: list[str], children: int) -> float:
+    """Run mutmut in ``work`` (on ``names`` only, if given); returns the seconds taken."""
     env = dict(os.environ, NUMBA_THREADING_LAYER="workqueue")
     started = time.monotonic()
-    with open(work / "mutmut.log", "w", encoding="utf-8") as log:
-        subprocess.run([sys.executable, "-m", "mutmut", "run", "--max-children", str(children)], cwd=work, env=env,
-                       stdout=log, stderr=subprocess.STDOUT, check=False)
-    seconds = time.monotonic() - started
+    with open(work / "mutmut.log", "a", encoding="utf-8") as log:
+        subprocess.run([sys.executable, "-m", "mutmut", "run", "--max-children", str(children), *names], cwd=work,
+                       env=env, stdout=log, stderr=subprocess.STDOUT, check=False)
+    return time.monotonic() - started
+
+
+def _summarise(work: Path, module: str, seconds: float, retested: list[str] | None = None) -> dict:
+    """The counts, the score and the surviving mutants (with their diffs) of a finished run;
+    after a rerun of the mutants ``retested``, the others count as killed by the first run."""
     statuses = _statuses(work, module)
+    if retested is not None:
+        statuses = {name: status if name in retested else "killed" for name, status in statuses.items()}
     equivalent_entries = _equivalents(module)
     survivors, equivalent, used = [], 0, set()
     for name, status in sorted(statuses.items()):
         if status in KILLED:
             continue
-        show = subprocess.run([sys.executable, "-m", "mutmut", "show", name], cwd=work, env=env,
-                              capture_output=True, text=True, check=False)
+        show = subprocess.run([sys.executable, "-m", "mutmut", "show", name], cwd=work, capture_output=True,
+                              text=True, check=False)
         diff = show.stdout.split("\n", 1)[1] if "\n" in show.stdout else show.stdout
         function = _function(name, module)
         removed, added = _changed(diff)
@@ -183,18 +188,40 @@ def run_module(module: str, tests: list[str], children: int, keep: bool) -> dict
     total = len(statuses)
     killed = sum(status in KILLED for status in statuses.values())
     relevant = total - equivalent
-    report = {"module": module, "mutants": total, "killed": killed, "equivalent": equivalent,
-              "survived": len(survivors), "score": killed / relevant if relevant else 1.0, "seconds": round(seconds),
-              "survivors": survivors, "unused_equivalents": [equivalent_entries[i] for i in
-                                                             range(len(equivalent_entries)) if i not in used]}
+    unused = [e for i, e in enumerate(equivalent_entries) if i not in used]
+    still_open = sorted(name for name, status in statuses.items() if status not in KILLED)
+    return {"module": module, "mutants": total, "killed": killed, "equivalent": equivalent, "open": still_open,
+            "survived": len(survivors), "score": killed / relevant if relevant else 1.0, "seconds": round(seconds),
+            "survivors": survivors, "unused_equivalents": unused}
+
+
+def run_module(module: str, tests: list[str], children: int, keep: bool, rerun: Path | None = None) -> dict:
+    """Mutate ``module`` in a fresh copy of the project, or, with ``rerun`` (a folder kept by an
+    earlier run), copy today's tests there and test again only the mutants that survived it
+    (tests only added since: a killed mutant stays killed)."""
+    if rerun is None:
+        work = Path(tempfile.mkdtemp(prefix=f"mutation-{module}-"))
+        _copy_project(work)
+        names = []
+    else:
+        work = rerun
+        names = json.loads((work / "report.json").read_text())["open"]   # survivors and equivalent ones
+        shutil.rmtree(work / "tests")
+        shutil.copytree(ROOT / "tests", work / "tests", ignore=shutil.ignore_patterns("__pycache__", ".hypothesis"))
+        shutil.copy2(ROOT / "pyproject.toml", work / "pyproject.toml")
+        # mutmut only looks up the callees of tests it has not seen: start its map afresh
+        (work / "mutants" / "mutmut-stats.json").unlink(missing_ok=True)
+    _configure(work, module, tests)
+    seconds = _mutmut(work, names, children) if (names or rerun is None) else 0.0
+    report = _summarise(work, module, seconds, names if rerun is not None else None)
     (work / "report.json").write_text(json.dumps(report, indent=1))
-    print(f"{module}: {total} mutants, {killed} killed, {equivalent} equivalent, {len(survivors)} surviving, "
-          f"score {100 * report['score']:.1f} % ({seconds:.0f} s; {work / 'report.json'})", flush=True)
-    for s in survivors:
+    print(f"{module}: {report['mutants']} mutants, {report['killed']} killed, {report['equivalent']} equivalent, "
+          f"{report['survived']} surviving, score {100 * report['score']:.1f} % ({seconds:.0f} s; {work})", flush=True)
+    for s in report["survivors"]:
         print(f"  SURVIVED ({s['status']}) {s['name']}\n    - {s['removed']}\n    + {s['added']}")
     for e in report["unused_equivalents"]:
         print(f"  (listed as equivalent, not seen: {e['function']}: {e['removed']} -> {e['added']})")
-    if not keep:
+    if not keep and rerun is None:
         shutil.rmtree(work, ignore_errors=True)
     return report
 
@@ -205,11 +232,16 @@ def main(argv=None) -> int:
                                                    "(default: all of them)")
     parser.add_argument("--children", type=int, default=2, help="mutants tested at once (default 2)")
     parser.add_argument("--keep", action="store_true", help="keep the temporary folders (mutmut show/browse there)")
+    parser.add_argument("--rerun", type=Path, metavar="FOLDER",
+                        help="a folder kept by an earlier run of one module: test its survivors again with today's tests")
     args = parser.parse_args(argv)
     unknown = [m for m in args.modules if m not in MODULES]
     if unknown:
         parser.error(f"unknown module(s) {unknown}; choose from {', '.join(MODULES)}")
-    reports = [run_module(m, MODULES[m], args.children, args.keep) for m in (args.modules or list(MODULES))]
+    modules = args.modules or list(MODULES)
+    if args.rerun is not None and len(modules) != 1:
+        parser.error("--rerun takes the folder of one module: name that module")
+    reports = [run_module(m, MODULES[m], args.children, args.keep, args.rerun) for m in modules]
     print("\n| module | mutants | killed | equivalent | score over non-equivalent |\n|---|---|---|---|---|")
     for r in reports:
         print(f"| `core/{r['module']}.py` | {r['mutants']} | {r['killed']} | {r['equivalent']} | "

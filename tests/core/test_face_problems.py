@@ -327,6 +327,20 @@ def test_bordered_face_value_against_an_independent_solve():
     first, second = (slice(0, 2),) + across, (slice(2, 4),) + across
     drop = np.average(p[first], weights=volume[first]) - np.average(p[second], weights=volume[second])
     assert faces[0][0, 1, 0] == pytest.approx(METRIC_TRANSMISSIBILITY * rate / drop, rel=1e-9)
+    # Without a ring (the default) the local problem is the two blocks alone, and the rate
+    # through the shared face is the inflow; in field units the same value converted
+    # (Ertekin, Abou-Kassem & King 2001: T in rb cP/(day psi) from mD ft).
+    window = np.s_[0:4, 2:4, 0:2]
+    sub = (k[window],) * 3
+    problem = sealed_problem(sub, dx[0:4], dy[2:4], dz[window], 0)
+    p = problem.pressure()
+    rate = problem.value() / problem.scale            # the inflow at unit drop, mD*m
+    volume = (dx[0:4, None, None] * dy[None, 2:4, None] * dz[window])
+    drop = np.average(p[0:2], weights=volume[0:2]) - np.average(p[2:4], weights=volume[2:4])
+    for units, constant, length in (("metric", METRIC_TRANSMISSIBILITY, 1.0),
+                                    ("field", FIELD_TRANSMISSIBILITY, 1.0 / FOOT_M)):
+        faces, _ = flow_transmissibility(cells, make_partition(shape, ratio=(2, 2, 2)), units=units)
+        assert faces[0][0, 1, 0] == pytest.approx(constant * length * rate / drop, rel=1e-9)
 
 
 def test_one_pass_with_closed_cells_in_some_domains_only():
