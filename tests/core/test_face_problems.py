@@ -327,6 +327,11 @@ def test_bordered_face_value_against_an_independent_solve():
     first, second = (slice(0, 2),) + across, (slice(2, 4),) + across
     drop = np.average(p[first], weights=volume[first]) - np.average(p[second], weights=volume[second])
     assert faces[0][0, 1, 0] == pytest.approx(METRIC_TRANSMISSIBILITY * rate / drop, rel=1e-9)
+    # T is linear in k: the same field 1e4 times less permeable (rates below 1 mD*m)
+    tight = make_cells(1e-4 * k, dx=dx, dy=dy, dz=dz)
+    faces, _ = flow_transmissibility(tight, make_partition(shape, ratio=(2, 2, 2)), border=1)
+    assert faces[0][0, 1, 0] == pytest.approx(1e-4 * METRIC_TRANSMISSIBILITY * rate / drop, rel=1e-9)
+    assert 0 < 1e-4 * rate < 1
     # Without a ring (the default) the local problem is the two blocks alone, and the rate
     # through the shared face is the inflow; in field units the same value converted
     # (Ertekin, Abou-Kassem & King 2001: T in rb cP/(day psi) from mD ft).
