@@ -164,14 +164,17 @@ def _mutmut(work: Path, names: list[str], children: int) -> float:
     return time.monotonic() - started
 
 
-def _summarise(work: Path, module: str, seconds: float, retested: list[str] | None = None) -> dict:
+def _summarise(work: Path, module: str, seconds: float, retested: list[str] | None = None,
+               equivalent_before: set[str] = frozenset()) -> dict:
     """The counts, the score and the surviving mutants (with their diffs) of a finished run;
-    after a rerun of the mutants ``retested``, the others count as killed by the first run."""
+    after a rerun of the mutants ``retested``, the others count as killed by the first run,
+    except ``equivalent_before`` (equivalent survivors of that run, not run again)."""
     statuses = _statuses(work, module)
     if retested is not None:
-        statuses = {name: status if name in retested else "killed" for name, status in statuses.items()}
+        statuses = {name: status if name in retested else "survived" if name in equivalent_before else "killed"
+                    for name, status in statuses.items()}
     equivalent_entries = _equivalents(module)
-    survivors, equivalent, used = [], 0, set()
+    survivors, equivalent_names, used = [], [], set()
     for name, status in sorted(statuses.items()):
         if status in KILLED:
             continue
@@ -182,17 +185,18 @@ def _summarise(work: Path, module: str, seconds: float, retested: list[str] | No
         removed, added = _changed(diff)
         match = [i for i, e in enumerate(equivalent_entries) if _is_equivalent(e, function, removed, added)]
         if match:
-            equivalent += 1
+            equivalent_names.append(name)
             used.update(match)
             continue
         survivors.append({"name": name, "status": status, "function": function, "removed": removed,
                           "added": added, "diff": diff})
-    total = len(statuses)
+    total, equivalent = len(statuses), len(equivalent_names)
     killed = sum(status in KILLED for status in statuses.values())
     relevant = total - equivalent
     unused = [e for i, e in enumerate(equivalent_entries) if i not in used]
     still_open = sorted(name for name, status in statuses.items() if status not in KILLED)
     return {"module": module, "mutants": total, "killed": killed, "equivalent": equivalent, "open": still_open,
+            "equivalent_names": equivalent_names,
             "survived": len(survivors), "score": killed / relevant if relevant else 1.0, "seconds": round(seconds),
             "survivors": survivors, "unused_equivalents": unused}
 
@@ -204,10 +208,12 @@ def run_module(module: str, tests: list[str], children: int, keep: bool, rerun: 
     if rerun is None:
         work = Path(tempfile.mkdtemp(prefix=f"mutation-{module}-"))
         _copy_project(work)
-        names = []
+        names, equivalent_before = [], frozenset()
     else:
         work = rerun
-        names = json.loads((work / "report.json").read_text())["open"]   # survivors and equivalent ones
+        before = json.loads((work / "report.json").read_text())
+        equivalent_before = set(before.get("equivalent_names", []))
+        names = [n for n in before["open"] if n not in equivalent_before]
         shutil.rmtree(work / "tests")
         shutil.copytree(ROOT / "tests", work / "tests", ignore=shutil.ignore_patterns("__pycache__", ".hypothesis"))
         shutil.copy2(ROOT / "pyproject.toml", work / "pyproject.toml")
@@ -215,7 +221,8 @@ def run_module(module: str, tests: list[str], children: int, keep: bool, rerun: 
         (work / "mutants" / "mutmut-stats.json").unlink(missing_ok=True)
     _configure(work, module, tests)
     seconds = _mutmut(work, names, children) if (names or rerun is None) else 0.0
-    report = _summarise(work, module, seconds, names if rerun is not None else None)
+    report = _summarise(work, module, seconds, names if rerun is not None else None,
+                        equivalent_before if rerun is not None else frozenset())
     (work / "report.json").write_text(json.dumps(report, indent=1))
     print(f"{module}: {report['mutants']} mutants, {report['killed']} killed, {report['equivalent']} equivalent, "
           f"{report['survived']} surviving, score {100 * report['score']:.1f} % ({seconds:.0f} s; {work})", flush=True)
