@@ -117,6 +117,10 @@ def test_partition_from_ranges_of_a_coarse_file():
     p = partition_from_ranges(([0, 2, 4], [0], [0, 1]), ([2, 4, 5], [3], [1, 6]))
     assert [e.tolist() for e in p.edges] == [[0, 2, 4, 5], [0, 3], [0, 1, 6]]
     assert p.ratio == (None, None, None)
+    # ranges read back as floats (a file's packed or converted integers) still give index edges
+    p = partition_from_ranges(([0.0, 2.0], [0.0], [0.0]), ([2.0, 3.0], [2.0], [1.0]))
+    assert all(e.dtype.kind == "i" for e in p.edges)
+    np.testing.assert_array_equal(p.block_sum(np.ones((3, 2, 1))).ravel(), [4.0, 2.0])
     for starts, stops in ((([1, 2], [0], [0]), ([2, 3], [1], [1])),     # not from 0
                           (([0, 3], [0], [0]), ([2, 4], [1], [1])),     # a gap
                           (([0, 2], [0], [0]), ([2, 2], [1], [1])),     # an empty block
