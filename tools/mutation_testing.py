@@ -39,6 +39,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import random
 import re
 import shutil
 import subprocess
@@ -165,14 +166,17 @@ def _mutmut(work: Path, names: list[str], children: int) -> float:
 
 
 def _summarise(work: Path, module: str, seconds: float, retested: list[str] | None = None,
-               equivalent_before: set[str] = frozenset()) -> dict:
+               equivalent_before: set[str] = frozenset(), untested: set[str] = frozenset()) -> dict:
     """The counts, the score and the surviving mutants (with their diffs) of a finished run;
     after a rerun of the mutants ``retested``, the others count as killed by the first run,
-    except ``equivalent_before`` (equivalent survivors of that run, not run again)."""
+    except ``equivalent_before`` (equivalent survivors of that run, not run again) and
+    ``untested`` (left out of a sample: reported, and outside the counts and the score)."""
     statuses = _statuses(work, module)
     if retested is not None:
-        statuses = {name: status if name in retested else "survived" if name in equivalent_before else "killed"
-                    for name, status in statuses.items()}
+        statuses = {name: status if name in retested else "survived" if name in equivalent_before else
+                    "not tested" if name in untested else "killed" for name, status in statuses.items()}
+    not_tested = sorted(name for name, status in statuses.items() if status in ("not tested", "not checked"))
+    statuses = {name: status for name, status in statuses.items() if name not in not_tested}
     equivalent_entries = _equivalents(module)
     survivors, equivalent_names, used = [], [], set()
     for name, status in sorted(statuses.items()):
@@ -196,24 +200,32 @@ def _summarise(work: Path, module: str, seconds: float, retested: list[str] | No
     unused = [e for i, e in enumerate(equivalent_entries) if i not in used]
     still_open = sorted(name for name, status in statuses.items() if status not in KILLED)
     return {"module": module, "mutants": total, "killed": killed, "equivalent": equivalent, "open": still_open,
-            "equivalent_names": equivalent_names,
+            "equivalent_names": equivalent_names, "not_tested": not_tested,
             "survived": len(survivors), "score": killed / relevant if relevant else 1.0, "seconds": round(seconds),
             "survivors": survivors, "unused_equivalents": unused}
 
 
-def run_module(module: str, tests: list[str], children: int, keep: bool, rerun: Path | None = None) -> dict:
+def run_module(module: str, tests: list[str], children: int, keep: bool, rerun: Path | None = None,
+               sample: int | None = None) -> dict:
     """Mutate ``module`` in a fresh copy of the project, or, with ``rerun`` (a folder kept by an
     earlier run), copy today's tests there and test again only the mutants that survived it
     (tests only added since: a killed mutant stays killed)."""
     if rerun is None:
         work = Path(tempfile.mkdtemp(prefix=f"mutation-{module}-"))
         _copy_project(work)
-        names, equivalent_before = [], frozenset()
+        names, equivalent_before, untested = [], frozenset(), frozenset()
     else:
         work = rerun
         before = json.loads((work / "report.json").read_text())
         equivalent_before = set(before.get("equivalent_names", []))
         names = [n for n in before["open"] if n not in equivalent_before]
+        untested = set(before.get("not_tested", []))
+        if sample is not None:   # the survivors of the last run, and a seeded sample of the mutants it never ran
+            statuses = _statuses(work, module)
+            never = sorted(n for n in names if statuses[n] == "not checked")
+            chosen = set(random.Random(0).sample(never, min(sample, len(never))))
+            untested |= set(never) - chosen
+            names = [n for n in names if n not in untested]
         shutil.rmtree(work / "tests")
         shutil.copytree(ROOT / "tests", work / "tests", ignore=shutil.ignore_patterns("__pycache__", ".hypothesis"))
         shutil.copy2(ROOT / "pyproject.toml", work / "pyproject.toml")
@@ -221,11 +233,12 @@ def run_module(module: str, tests: list[str], children: int, keep: bool, rerun: 
         (work / "mutants" / "mutmut-stats.json").unlink(missing_ok=True)
     _configure(work, module, tests)
     seconds = _mutmut(work, names, children) if (names or rerun is None) else 0.0
-    report = _summarise(work, module, seconds, names if rerun is not None else None,
-                        equivalent_before if rerun is not None else frozenset())
+    report = _summarise(work, module, seconds, names if rerun is not None else None, equivalent_before, untested)
     (work / "report.json").write_text(json.dumps(report, indent=1))
     print(f"{module}: {report['mutants']} mutants, {report['killed']} killed, {report['equivalent']} equivalent, "
-          f"{report['survived']} surviving, score {100 * report['score']:.1f} % ({seconds:.0f} s; {work})", flush=True)
+          f"{report['survived']} surviving, score {100 * report['score']:.1f} % ({seconds:.0f} s; {work})"
+          + (f"; {len(report['not_tested'])} more not tested (outside the sample)" if report["not_tested"] else ""),
+          flush=True)
     for s in report["survivors"]:
         print(f"  SURVIVED ({s['status']}) {s['name']}\n    - {s['removed']}\n    + {s['added']}")
     for e in report["unused_equivalents"]:
@@ -241,6 +254,8 @@ def main(argv=None) -> int:
                                                    "(default: all of them)")
     parser.add_argument("--children", type=int, default=2, help="mutants tested at once (default 2)")
     parser.add_argument("--keep", action="store_true", help="keep the temporary folders (mutmut show/browse there)")
+    parser.add_argument("--sample", type=int, metavar="N",
+                        help="with --rerun: of the mutants the kept run never reached, test a seeded random N only")
     parser.add_argument("--rerun", type=Path, metavar="FOLDER",
                         help="a folder kept by an earlier run of one module: test its survivors again with today's tests")
     args = parser.parse_args(argv)
@@ -250,7 +265,7 @@ def main(argv=None) -> int:
     modules = args.modules or list(MODULES)
     if args.rerun is not None and len(modules) != 1:
         parser.error("--rerun takes the folder of one module: name that module")
-    reports = [run_module(m, MODULES[m], args.children, args.keep, args.rerun) for m in modules]
+    reports = [run_module(m, MODULES[m], args.children, args.keep, args.rerun, args.sample) for m in modules]
     print("\n| module | mutants | killed | equivalent | score over non-equivalent |\n|---|---|---|---|---|")
     for r in reports:
         print(f"| `core/{r['module']}.py` | {r['mutants']} | {r['killed']} | {r['equivalent']} | "
