@@ -22,3 +22,32 @@ def make_cells(kx, ky=None, kz=None, dx=None, dy=None, dz=None, porosity=0.2, nt
 def lognormal(shape, sigma, seed):
     """Uncorrelated lognormal permeability (geometric mean 1 mD)."""
     return np.exp(sigma * np.random.default_rng(seed).standard_normal(shape))
+
+
+#: a rock table for two-phase tests (TOML): two rock types, 'sand' by flag meaning and code 7
+ROCKS = """\
+[fluids]
+water_viscosity = 0.6
+oil_viscosity = 3.0
+interfacial_tension = 0.03
+
+[rock.sand]
+swc = 0.1
+sor = 0.2
+krw_max = 0.3
+kro_max = 0.85
+nw = 2.0
+no = 2.5
+j_entry = 0.3
+pore_size_index = 2.5
+
+[rock."7"]
+swc = 0.28
+sor = 0.22
+krw_max = 0.12
+kro_max = 0.55
+nw = 3.5
+no = 3.0
+j_entry = 0.45
+pore_size_index = 1.1
+"""

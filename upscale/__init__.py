@@ -6,6 +6,7 @@ solves how much of the fine model's flow the coarse grid keeps.
     coarse = upscale.coarsen(fine, ratio=(5, 5, 5), method="flow", bc="sealed")
     upscale.write(coarse, "out.nc")
     metrics = upscale.check(fine, coarse)
+    curves = upscale.two_phase(fine, "rocks.toml", ratio=(5, 5, 5), limit="capillary")
 
 The package is built in rooms, each importing only those before it::
 
@@ -28,9 +29,10 @@ from .about import tool_version
 from .errors import InputError
 
 __version__ = tool_version()
-__all__ = ["open_field", "coarsen", "write", "check", "InputError", "__version__"]
+__all__ = ["open_field", "coarsen", "write", "check", "two_phase", "InputError", "__version__"]
 
-_PUBLIC = {"open_field": "io.reading", "write": "scale.stream", "coarsen": "scale.coarsen", "check": "checks.run"}
+_PUBLIC = {"open_field": "io.reading", "write": "scale.stream", "coarsen": "scale.coarsen", "check": "checks.run",
+           "two_phase": "scale.two_phase"}
 
 
 def __getattr__(name):

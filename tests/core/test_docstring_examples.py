@@ -6,11 +6,11 @@ import doctest
 
 import pytest
 
-from upscale.core import local_global, partition, patch_flows, static, two_point
+from upscale.core import local_global, partition, patch_flows, rock_curves, static, two_point
 from upscale.io import sector
 
 
-@pytest.mark.parametrize("module", [partition, static, two_point, local_global, patch_flows, sector],
+@pytest.mark.parametrize("module", [partition, static, two_point, local_global, patch_flows, sector, rock_curves],
                          ids=lambda m: m.__name__)
 def test_docstring_examples(module):
     result = doctest.testmod(module, optionflags=doctest.NORMALIZE_WHITESPACE)

@@ -30,6 +30,7 @@ import pytest
 import xarray as xr
 
 import upscale
+from helpers import ROCKS as HELPER_ROCKS
 from upscale.io.reading import file_checksum
 from upscale.io.validation import validate
 
@@ -169,6 +170,44 @@ def with_args(*args):
     return ("coarsen", "{fine}", "-o", "{out}", *args)
 
 
+# Two-phase: the small field with facies (flag meanings sand, shale) beside a rock table.
+ROCKS = HELPER_ROCKS.replace('[rock."7"]', "[rock.shale]")
+
+
+def with_facies(ds):
+    codes = (np.indices(shape_of(ds)).sum(axis=0) % 2).astype(np.int8)
+    ds["facies"] = (("x", "y", "z"), codes, {"flag_values": np.array([0, 1], np.int8), "flag_meanings": "sand shale"})
+
+
+def two_phase_field(rocks: str = ROCKS, change=None):
+    """A builder: the small field with facies (then ``change``) and ``rocks`` as rocks.toml."""
+    def build(folder: Path, make) -> Path:
+        (folder / "rocks.toml").write_text(rocks)
+        ds = make()
+        with_facies(ds)
+        if change is not None:
+            change(ds)
+        return write(ds, folder)
+    return build
+
+
+def rocks_with(old: str, new: str) -> str:
+    assert old in ROCKS
+    return ROCKS.replace(old, new, 1)
+
+
+TWO_PHASE = ("two-phase", "{fine}", "--rocks", "rocks.toml", "-o", "{out}", "--ratio", "2", "2", "2")
+
+
+def two_phase_args(*args):
+    return TWO_PHASE + args
+
+
+def facies_fraction(ds):
+    ds["facies"] = ds["facies"].astype(float)
+    ds["facies"].values[1, 2, 3] = 0.5
+
+
 # ----------------------------------------------------------------------------- catalogue
 
 @dataclass(frozen=True)
@@ -251,6 +290,46 @@ CASES = [
          with_args("--ratio", "2", "2", "2", "--pinch-thickness", "thin")),
     Case("pinch-thickness-nan", valid, ("--pinch-thickness", "finite number >= 0", "'nan'"),
          with_args("--ratio", "2", "2", "2", "--pinch-thickness", "nan")),
+    # --- two-phase: the rock table, the facies, the options
+    Case("rocks-missing", valid, ("rocks.toml", "rock table not found"), TWO_PHASE),
+    Case("rocks-not-toml", two_phase_field("[fluids\nwater = "), ("rocks.toml", "not a valid TOML rock table"),
+         TWO_PHASE),
+    Case("rocks-unknown-key", two_phase_field(rocks_with("nw = 2.0", "nw_exponent = 2.0")),
+         ("[rock.sand]", "unknown key 'nw_exponent'", "pore_size_index"), TWO_PHASE),
+    Case("rocks-unknown-table", two_phase_field(ROCKS.replace("[fluids]", "[fluid]")),
+         ("unknown table or key 'fluid'", "[fluids]"), TWO_PHASE),
+    Case("rocks-missing-key", two_phase_field(rocks_with("j_entry = 0.3\n", "")),
+         ("[rock.sand] misses j_entry", "Leverett J at the entry pressure"), TWO_PHASE),
+    Case("rocks-swc-in-percent", two_phase_field(rocks_with("swc = 0.1", "swc = 12")),
+         ("[rock.sand] swc = 12 is outside [0, 1)", "fraction of pore volume", "not percent"), TWO_PHASE),
+    Case("rocks-sor-negative", two_phase_field(rocks_with("sor = 0.2", "sor = -0.1")),
+         ("[rock.sand] sor = -0.1 is outside [0, 1)", "residual oil saturation"), TWO_PHASE),
+    Case("rocks-swc-plus-sor", two_phase_field(rocks_with("swc = 0.1", "swc = 0.85")),
+         ("[rock.sand] swc + sor = 1.05 must be below 1",), TWO_PHASE),
+    Case("rocks-value-text", two_phase_field(rocks_with("no = 2.5", 'no = "two"')),
+         ("[rock.sand] no = 'two' must be a finite number", "Corey exponent of oil"), TWO_PHASE),
+    Case("rocks-viscosity-zero", two_phase_field(ROCKS.replace("water_viscosity = 0.6", "water_viscosity = 0")),
+         ("[fluids] water_viscosity = 0 is outside (0, inf)", "cP"), TWO_PHASE),
+    Case("rocks-tension-in-dyn-per-cm", two_phase_field(ROCKS.replace("interfacial_tension = 0.03",
+                                                                      "interfacial_tension = 25")),
+         ("interfacial_tension = 25 is outside (0, 1]", "N/m", "mN/m"), TWO_PHASE),
+    Case("rocks-no-rock-type", two_phase_field(ROCKS.split("[rock.sand]")[0]), ("no rock type", "[rock.NAME]"),
+         TWO_PHASE),
+    Case("facies-without-rock", two_phase_field(ROCKS.split("[rock.shale]")[0]),
+         ("facies code 1 (shale) has no rock type", "first at (x=0, y=0, z=1)", "add [rock.shale]"), TWO_PHASE),
+    Case("rock-names-no-facies", two_phase_field(ROCKS.replace("[rock.shale]", "[rock.shales]")),
+         ("[rock.shales] names no facies", "sand (0), shale (1)"), TWO_PHASE),
+    Case("field-without-facies", two_phase_field(change=lambda ds: ds.__delitem__("facies")),
+         ("no variable 'facies'",), TWO_PHASE),
+    Case("facies-not-integer", two_phase_field(change=facies_fraction),
+         ("'facies' is not an integer code", "(x=1, y=2, z=3)", "0.5"), TWO_PHASE),
+    Case("two-phase-unknown-limit", two_phase_field(), ("unknown limit 'slow'", "capillary", "viscous"),
+         two_phase_args("--limit", "slow")),
+    Case("two-phase-one-point", two_phase_field(), ("points must be a whole number from 2", "got 1"),
+         two_phase_args("--points", "1")),
+    Case("two-phase-global", two_phase_field(), ("'global' is not available for two-phase",),
+         two_phase_args("--bc", "global")),
+    Case("two-phase-regions-missing", two_phase_field(), ("no variable 'zone'",), two_phase_args("--regions", "zone")),
     # --- output path
     Case("output-folder-missing", valid, ("no_folder", "does not exist"), out="no_folder/out.nc"),
     Case("output-equals-input", valid, ("overwrite the input file",), out="{fine}"),

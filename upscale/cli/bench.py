@@ -7,7 +7,9 @@ system per block and direction (periodic: one factorisation, three right-hand si
 is timed on a random sample of blocks and scaled to the whole field, and its numbers are
 compared with the batched ones on that sample. The sealed solves, the face problems
 (multipliers) and both in one pass (:func:`upscale.core.face_problems.sealed_and_face_flow`)
-are timed REPEATS times each, interleaved, and the least time of each is reported.
+are timed REPEATS times each, interleaved, and the least time of each is reported; so are
+the two-phase upscaling (capillary limit, 20 points, two rock types) and the single-phase
+sealed one, TWO_PHASE_REPEATS times each.
 """
 
 from __future__ import annotations
@@ -22,7 +24,10 @@ import scipy.sparse.linalg as spla
 from ..core.block_problems import band_order, flow_tensors
 from ..core.face_problems import flow_transmissibility, sealed_and_face_flow
 from ..core.partition import block_groups, make_partition
+from ..core.rock_curves import Fluids, RockCurves
 from ..core.static import STATIC_METHODS, cardwell_parsons, static_average
+from ..core.two_phase import TwoPhaseRecipe, two_phase_variables
+from ..core.upscaling import block_variables, make_recipe
 from ..gallery.synthetic import lognormal_field
 from ..io.schema import arrays
 from ..io.validation import validate
@@ -31,6 +36,18 @@ BLOCK = (5, 5, 5)
 
 
 REPEATS = 5  # interleaved timings of sealed, multipliers and both together; the least of each
+
+
+TWO_PHASE_REPEATS = 2  # interleaved timings of the two-phase and the single-phase upscaling
+
+
+TWO_PHASE_TARGET = 50.0  # the two-phase upscaling at most this many times the single-phase sealed one
+
+
+#: the bench's two rock types (invented): the cells above the median k are "sand", the others "silt"
+BENCH_ROCKS = RockCurves(("silt", "sand"), swc=np.array([0.25, 0.12]), sor=np.array([0.2, 0.18]),
+                         krw_max=np.array([0.2, 0.35]), kro_max=np.array([0.7, 0.9]), nw=np.array([3.0, 2.5]),
+                         no=np.array([3.0, 2.0]), j_entry=np.array([0.4, 0.25]), pore_size_index=np.array([1.2, 2.0]))
 
 
 def _end(shape, axis: int, index: int) -> tuple[slice, ...]:
@@ -184,6 +201,7 @@ def run_bench(shape=(60, 220, 85), sample: int = 300, quiet: bool = False, seed:
     static_time = _time_static(cells, partition, k)
     results, times = _time_flow(cells, partition)
     plain_time, difference, sampled = _time_plain(cells, partition, k, results, sample, seed)
+    two_phase = _time_two_phase(cells, partition)
     figures = {
         "field": f"{shape[0]} x {shape[1]} x {shape[2]} = {int(np.prod(shape)):,} cells, blocks {BLOCK}",
         "blocks": int(np.prod(partition.shape)),
@@ -200,6 +218,7 @@ def run_bench(shape=(60, 220, 85), sample: int = 300, quiet: bool = False, seed:
         "max_relative_difference_sealed": difference["sealed"],
         "max_relative_difference_periodic": difference["periodic"],
         "peak_memory_mb": _peak_memory_mb(),
+        **two_phase,
     }
     if whole_model:
         figures.update(_time_whole_model(cells))
@@ -213,6 +232,8 @@ def _warm_up() -> None:
     small = arrays(validate(lognormal_field(shape=(10, 10, 10), seed=1)))
     for bc in ("sealed", "periodic"):
         flow_tensors(small, warm, bc)
+    rock, recipe = _two_phase_setting(small)
+    two_phase_variables(small, rock, warm, tuple(slice(0, n) for n in warm.shape), recipe)
 
 
 def _time_static(cells, partition, k) -> float:
@@ -243,6 +264,30 @@ def _time_flow(cells, partition) -> tuple[dict, dict]:
                                ("together", lambda: sealed_and_face_flow(cells, partition))):
             times[name] = min(times.get(name, np.inf), _timed(function)[1])
     return results, times
+
+
+def _two_phase_setting(cells) -> tuple[np.ndarray, TwoPhaseRecipe]:
+    """The bench's rock index per cell (sand above the median k) and two-phase recipe."""
+    rock = (cells.kx > np.median(cells.kx[cells.active])).astype(np.int64)
+    recipe = TwoPhaseRecipe(make_recipe("flow", "sealed", 0), BENCH_ROCKS, Fluids(0.5, 2.0, 0.025), "capillary", 20,
+                            np.arange(2), np.arange(2))
+    return rock, recipe
+
+
+def _time_two_phase(cells, partition) -> dict:
+    """Seconds of the two-phase upscaling (capillary limit, 20 points, 3 directions, sealed;
+    two rock types split at the median k) and of the single-phase sealed flow-based
+    upscaling (everything a coarse file holds), the least of TWO_PHASE_REPEATS interleaved
+    runs each, and their ratio."""
+    rock, recipe = _two_phase_setting(cells)
+    everything = tuple(slice(0, n) for n in partition.shape)
+    times = {}
+    for _ in range(TWO_PHASE_REPEATS):
+        for name, function in (("single", lambda: block_variables(cells, partition, everything, recipe.single)),
+                               ("two_phase", lambda: two_phase_variables(cells, rock, partition, everything, recipe))):
+            times[name] = min(times.get(name, np.inf), _timed(function)[1])
+    return {"single_phase_seconds": times["single"], "two_phase_seconds": times["two_phase"],
+            "two_phase_to_single": times["two_phase"] / times["single"]}
 
 
 def _time_plain(cells, partition, k, results: dict, sample: int, seed: int) -> tuple[dict, dict, int]:
@@ -337,6 +382,10 @@ def format_bench(f: dict) -> str:
         f"    factorisation work of the two-block face problems: {f['multiplier_work_to_sealed']:.2f} x that of the sealed solves",
         f"  flow sealed and multipliers in one pass (shared elimination)   {f['together_seconds']:8.2f} s"
         f"   multipliers add {f['added_multiplier_to_sealed']:5.2f} x the sealed time",
+        f"  single-phase sealed upscaling (static, flow, bounds: a coarse file)  {f['single_phase_seconds']:8.2f} s",
+        f"  two-phase, capillary limit, 20 points, 3 directions, 2 rock types {f['two_phase_seconds']:8.2f} s"
+        f"   {f['two_phase_to_single']:5.1f} x the single-phase time (target <= {TWO_PHASE_TARGET:.0f} x: "
+        f"{'met' if f['two_phase_to_single'] <= TWO_PHASE_TARGET else 'missed'})",
         f"  largest relative difference batched vs plain on the sample: sealed "
         f"{f['max_relative_difference_sealed']:.1e}, periodic diagonal {f['max_relative_difference_periodic']:.1e}",
         *([f"  fine whole-model steady check, 3 directions (AMG-CG)        {f['whole_model_seconds']:8.2f} s"

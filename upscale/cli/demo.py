@@ -5,20 +5,26 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+import numpy as np
+
 from ..about import CAUTION
 from ..checks.blocks import block_errors
 from ..checks.faces import barrier_summary
 from ..checks.summary import field_summary
 from ..core.partition import make_partition
 from ..gallery.demo_field import demo_field
+from ..gallery.demo_rocks import DEMO_ROCKS
 from ..io.coarse_file import coarse_effective
 from ..io.reading import open_field
+from ..io.rock_table import read_rock_table
 from ..io.schema import arrays
 from ..io.writing import atomic_write, multiplier_csv
+from ..report.curve_report import two_phase_section
 from ..report.figures import fine_coarse_maps, save
 from ..report.text import format_static_versus_flow, format_summary
 from ..scale.coarsen import coarsen
 from ..scale.stream import write
+from ..scale.two_phase import two_phase
 from .check import run_check
 
 DEMO_RATIO = (5, 5, 5)
@@ -59,7 +65,8 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     Returns
     -------
     dict of Path
-        The paths written: fine, coarse, static, multipliers, summary, figure, report, metrics.
+        The paths written: fine, coarse, sealed, static, rocks, curves, multipliers, summary,
+        figure, report, metrics.
     """
     started = time.perf_counter()
     paths = _demo_paths(Path(folder))
@@ -69,12 +76,13 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     cells = arrays(fine)
     partition = make_partition(cells.shape, ratio=DEMO_RATIO)
     save(_kx_maps(cells, partition, coarse), paths["figure"])
-    text = _summary(fine, cells, partition, coarse, static, paths)
+    section, curves = _two_phase(fine, paths)
+    text = _summary(fine, cells, partition, coarse, static, paths) + "\n\n" + _two_phase_summary(curves, paths)
     atomic_write(paths["summary"], lambda tmp: Path(tmp).write_text(text + "\n"))
-    print(f"coarse grids written after {time.perf_counter() - started:.0f} s; now the whole-model "
-          "steady and transient checks of the fine and coarse models (a few minutes)", flush=True)
+    print(f"coarse grids and two-phase curves written after {time.perf_counter() - started:.0f} s; now the "
+          "whole-model steady and transient checks of the fine and coarse models (a few minutes)", flush=True)
     run_check(paths["fine"], paths["coarse"], report_dir=paths["report"].parent, transient=DEMO_TRANSIENT,
-              quiet=quiet, compare=[paths["sealed"]])
+              quiet=quiet, compare=[paths["sealed"]], sections=(section,))
     print(f"upscale demo finished in {time.perf_counter() - started:.1f} s")
     for name, path in paths.items():
         print(f"  {name:<12} {path}")
@@ -89,6 +97,7 @@ def _demo_paths(root: Path) -> dict[str, Path]:
     reports.mkdir(parents=True, exist_ok=True)
     return {"fine": fields / "demo.nc", "coarse": fields / "demo_coarse.nc",
             "sealed": fields / "demo_coarse_sealed.nc", "static": fields / "demo_coarse_arithmetic.nc",
+            "rocks": fields / "demo_rocks.toml", "curves": fields / "demo_curves.nc",
             "multipliers": reports / "multipliers.csv",
             "summary": reports / "summary.txt", "figure": reports / "fine_coarse_kx.png",
             "report": reports / "index.html", "metrics": reports / "metrics.json"}
@@ -106,6 +115,25 @@ def _coarse_grids(fine, paths: dict[str, Path]):
     face_multipliers = {n: static[f"t{n}_multiplier"].values for n in "xyz"}
     atomic_write(paths["multipliers"], lambda tmp: Path(tmp).write_text(multiplier_csv(face_multipliers)))
     return coarse, static
+
+
+def _two_phase(fine, paths: dict[str, Path]):
+    """The demo's rock table and its two-phase curves in the capillary limit, written; the
+    report section with the curves of a few blocks."""
+    atomic_write(paths["rocks"], lambda tmp: Path(tmp).write_text(DEMO_ROCKS))
+    table = read_rock_table(paths["rocks"])
+    curves = two_phase(fine, table, ratio=DEMO_RATIO, limit="capillary")
+    write(curves, paths["curves"])
+    return ("Two-phase curves (capillary limit)", two_phase_section(curves, fine, table)), curves
+
+
+def _two_phase_summary(curves, paths: dict[str, Path]) -> str:
+    """Text: the two-phase curve file, its limit and the range of the block end points."""
+    swc, sor = curves["swc"].values, curves["sor"].values
+    return (f"Two-phase curves ({curves.attrs['two_phase_limit']} limit, {curves.sizes['saturation_point']} points per "
+            f"block, rock table {paths['rocks']}): {paths['curves']}\nBlock end points: swc {np.nanmin(swc):.3f} to "
+            f"{np.nanmax(swc):.3f}, sor {np.nanmin(sor):.3f} to {np.nanmax(sor):.3f}. "
+            + curves.attrs["two_phase_caution"])
 
 
 def _kx_maps(cells, partition, coarse):

@@ -39,6 +39,11 @@ EXAMPLES = {
         upscale check fields/demo.nc fields/demo_coarse.nc --checks steady,diagonal
         upscale check big.nc big_coarse.nc --window 0:100,0:100,: --report reports/sector""",
     "layers": "upscale layers fields/demo.nc --target 10",
+    "two-phase": """\
+        upscale two-phase fields/demo.nc --rocks fields/demo_rocks.toml -o fields/demo_curves.nc --ratio 5 5 5 --limit capillary
+        upscale two-phase fine.nc --rocks rocks.toml -o curves.nc --ratio 5 5 5 --limit viscous --regions facies
+        upscale two-phase fine.nc --rocks rocks.toml -o curves.nc --ratio 4 4 2 --bc periodic --border 2 --report reports/curves
+        upscale two-phase big.nc --rocks rocks.toml -o curves.nc --ratio 5 5 5 --memory 2GB --workers 2""",
     "bench": """\
         upscale bench                  # prints timings and ratios side by side
         upscale bench --whole-model    # also the fine whole-model check (slow)""",
@@ -119,14 +124,19 @@ def _pinch_options(args) -> dict:
     return {"pinch_connections": args.pinch_connections, "pinch_thickness": thickness}
 
 
-def _coarsen_options(p: argparse.ArgumentParser) -> None:
-    """Options of ``upscale coarsen``."""
-    p.add_argument("fine", help="fine field (NetCDF)")
-    p.add_argument("-o", "--output", required=True, help="coarse grid file to write (NetCDF)")
+def _add_blocks(p: argparse.ArgumentParser) -> None:
+    """The options of the coarse blocks: --ratio, --edges."""
     p.add_argument("--ratio", nargs=3, type=int, metavar=("RX", "RY", "RZ"),
                    help="fine cells per coarse cell along x, y, z (default 1 1 1 where no edges)")
     p.add_argument("--edges", action="append", type=_edges_argument, default=[], metavar="AXIS=E0,E1,...",
                    help="fine-index edges of the coarse cells along one axis, e.g. z=0,3,10,20 (repeatable)")
+
+
+def _coarsen_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale coarsen``."""
+    p.add_argument("fine", help="fine field (NetCDF)")
+    p.add_argument("-o", "--output", required=True, help="coarse grid file to write (NetCDF)")
+    _add_blocks(p)
     p.add_argument("--method", default="flow", help="arithmetic, harmonic, geometric, power or flow; "
                    "or one per axis: arithmetic,arithmetic,harmonic (default flow)")
     p.add_argument("--omega", type=float, help="exponent of the power average")
@@ -214,6 +224,25 @@ def _layers_options(p: argparse.ArgumentParser) -> None:
                    "available); the field is read in slabs along x that fit it")
 
 
+def _two_phase_options(p: argparse.ArgumentParser) -> None:
+    """Options of ``upscale two-phase``."""
+    p.add_argument("fine", help="fine field (NetCDF) with an integer 'facies' variable")
+    p.add_argument("--rocks", required=True, metavar="ROCKS.toml", help="rock table: [fluids] and one [rock.NAME] "
+                   "per facies (NAME a flag meaning of 'facies', or its code)")
+    p.add_argument("-o", "--output", required=True, help="curve file to write (NetCDF; a coarse grid with the curves)")
+    _add_blocks(p)
+    p.add_argument("--limit", default="capillary", help="flow regime: capillary (capillary equilibrium in each "
+                   "block: low rates, small blocks; the default) or viscous (every cell at one fractional flow: "
+                   "high rates)")
+    p.add_argument("--points", type=int, default=20, help="saturation points per curve (default 20)")
+    p.add_argument("--bc", default="sealed", help="boundary condition of the phase solves: sealed, periodic or linear")
+    p.add_argument("--border", type=int, default=0, help="border ring of fine cells around each block")
+    p.add_argument("--regions", metavar="VARIABLE", help="also one curve set per region: the blocks sharing the code "
+                   "of this integer fine variable that holds most of their pore volume (e.g. facies)")
+    p.add_argument("--report", metavar="FOLDER", help="also write index.html with the curves of a few blocks")
+    _add_parallel(p)
+
+
 def _bench_options(p: argparse.ArgumentParser) -> None:
     """Options of ``upscale bench``."""
     p.add_argument("--shape", nargs=3, type=int, default=(60, 220, 85), metavar=("NX", "NY", "NZ"))
@@ -229,6 +258,7 @@ _VERB_PARSERS = (
     ("demo", "run the whole job on the built-in synthetic sector", _demo_options),
     ("check", "compare a coarse grid with its fine field by whole-model flow", _check_options),
     ("layers", "judge a grouping of fine layers and propose the best one", _layers_options),
+    ("two-phase", "upscale relative permeability and capillary pressure per coarse block", _two_phase_options),
     ("bench", "time the upscaling against the plain per-block approach", _bench_options),
 )
 
@@ -476,6 +506,52 @@ def _layers(args) -> int:
     return 0
 
 
+def _two_phase(args) -> int:
+    """``upscale two-phase``: the curves of every coarse block, in memory or in boxes."""
+    from ..io.reading import open_field
+    from ..io.rock_table import read_rock_table
+    from ..io.writing import check_output_path
+    from ..scale.cluster import cluster
+    from ..scale.stream import write
+    from ..scale.two_phase import check_options, two_phase
+
+    out = check_output_path(args.output, inputs=(args.fine, args.rocks))
+    if args.report and Path(args.report).exists() and not Path(args.report).is_dir():
+        raise InputError(f"--report {args.report}: is a file; give a folder for index.html and metrics.json")
+    if args.workers is not None and args.scheduler:
+        raise InputError("give --workers (local processes) or --scheduler (a running cluster), not both")
+    table = read_rock_table(args.rocks)
+    options = dict(ratio=args.ratio, edges=dict(args.edges), limit=args.limit, bc=args.bc, border=args.border,
+                   points=args.points, regions=args.regions)
+    check_options(args.limit, args.bc, args.points)
+    plan = _memory_plan(args)
+    chunked = args.box is not None or plan.chunked(args.fine, "flow", False)
+    with cluster(workers=args.workers, scheduler=args.scheduler):
+        fine = plan.open(args.fine) if chunked else open_field(args.fine)
+        with progress_bar(0 if chunked else 2 * _block_count(fine, options), "phase solves", args.quiet) as update:
+            curves = two_phase(fine, table, progress=None if chunked else update, memory=plan.box_memory,
+                               box=args.box, **options)
+    write(curves, out)
+    print(f"wrote {out} ({' x '.join(str(curves.sizes[d]) for d in ('x', 'y', 'z'))} blocks, "
+          f"{curves.sizes['saturation_point']} saturation points, {args.limit} limit{', in boxes' if chunked else ''})")
+    if args.report:
+        from ..report.curve_report import build_curve_report
+
+        paths = build_curve_report(args.report, curves, fine, table)
+        print(f"wrote {paths['html']}")
+    return 0
+
+
+def _block_count(fine, options: dict) -> int:
+    """Coarse blocks of a field's partition."""
+    import numpy as np
+
+    from ..core.partition import make_partition
+
+    shape = tuple(fine.sizes[d] for d in ("x", "y", "z"))
+    return int(np.prod(make_partition(shape, options["ratio"], options["edges"]).shape))
+
+
 def _bench(args) -> int:
     """``upscale bench``."""
     from .bench import run_bench
@@ -485,7 +561,7 @@ def _bench(args) -> int:
 
 
 VERBS = {"coarsen": _coarsen, "inspect": _inspect, "make-field": _make_field, "demo": _demo,
-         "check": _check, "layers": _layers, "bench": _bench}
+         "check": _check, "layers": _layers, "two-phase": _two_phase, "bench": _bench}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -31,8 +31,6 @@ from functools import cached_property, lru_cache
 
 import numpy as np
 from numba import njit, prange
-from scipy.sparse import coo_matrix
-from scipy.sparse.csgraph import connected_components
 
 from .._runtime import first_call
 from ..errors import InputError
@@ -355,22 +353,60 @@ class Components:
 def _components(first, second, values, nb: int, n: int, domains: np.ndarray | None = None) -> Components:
     """Components of a batch from its coupling list values (nb, E); with ``domains``,
     values holds only the couplings of those domains and all the others' are positive.
-    Only domains with a non-positive coupling go through the graph search."""
+    Only domains with a non-positive coupling go through the graph search; their
+    components are numbered domain by domain in order of their first cell."""
     labels = np.repeat(np.arange(nb), n)
     suspect = np.flatnonzero(np.any(values <= 0, axis=1))
     broken = suspect if domains is None else np.asarray(domains)[suspect]
     whole = np.setdiff1d(np.arange(nb), broken, assume_unique=True)
     if not broken.size:
         return Components(labels, whole * n, broken, nb)
-    b, e = np.nonzero(values[suspect] > 0)
-    rows, cols = b * n + first[e], b * n + second[e]
-    size = broken.size * n
-    graph = coo_matrix((np.ones(rows.size, dtype=np.int8), (rows, cols)), shape=(size, size))
-    count, found = connected_components(graph.tocsr(), directed=False)
-    labels.reshape(nb, n)[broken] = nb + found.reshape(broken.size, n)
-    local_start = np.unique(found, return_index=True)[1]
-    return Components(labels, np.concatenate([whole * n, broken[local_start // n] * n + local_start % n]), broken,
-                      nb + int(count))
+    local = np.empty((broken.size, n), dtype=np.int64)
+    starts = np.empty((broken.size, n), dtype=np.int64)
+    counts = np.empty(broken.size, dtype=np.int64)
+    with first_call(_label_components):
+        _label_components(np.asarray(first, dtype=np.int64), np.asarray(second, dtype=np.int64),
+                          np.ascontiguousarray(values[suspect]), local, starts, counts)
+    offset = nb + np.concatenate([[0], np.cumsum(counts)[:-1]])
+    labels.reshape(nb, n)[broken] = offset[:, None] + local
+    used = np.arange(n)[None, :] < counts[:, None]
+    start = (broken[:, None] * n + starts)[used]
+    return Components(labels, np.concatenate([whole * n, start]), broken, nb + int(counts.sum()))
+
+
+@njit(cache=True)
+def _root(parent, i):  # pragma: no cover - compiled
+    """The root of cell i's set, halving the path on the way."""
+    while parent[i] != i:
+        parent[i] = parent[parent[i]]
+        i = parent[i]
+    return i
+
+
+@njit(parallel=True, cache=True)
+def _label_components(first, second, values, labels, starts, counts):  # pragma: no cover - compiled
+    """Connected components of each domain (rows of values (nd, E)) over its positive
+    couplings (first[e], second[e]): union-find, then labels 0, 1, ... in order of each
+    component's first cell (labels (nd, n)), the first cell of each label (starts (nd, n),
+    the first counts[d] used) and the number of components (counts (nd,))."""
+    nd, n = labels.shape
+    for d in prange(nd):
+        parent = np.arange(n)
+        for e in range(first.size):
+            if values[d, e] > 0.0:
+                a, b = _root(parent, first[e]), _root(parent, second[e])
+                if a != b:
+                    parent[max(a, b)] = min(a, b)
+        label_of_root = np.full(n, -1)
+        count = 0
+        for i in range(n):
+            r = _root(parent, i)
+            if label_of_root[r] < 0:
+                label_of_root[r] = count
+                starts[d, count] = i
+                count += 1
+            labels[d, i] = label_of_root[r]
+        counts[d] = count
 
 
 @dataclass

@@ -9,6 +9,7 @@ as written, and the pore volume equals the sum of fine pore volumes.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import ClassVar
 
 import numpy as np
 
@@ -89,6 +90,22 @@ class Recipe:
     def full(self) -> bool:
         """A full tensor (kxy, kxz, kyz) is written."""
         return self.flow and self.bc in FULL_TENSOR
+
+    #: fine variables a box needs beside the field schema's (:mod:`upscale.scale.boxes`)
+    fine_variables: ClassVar[tuple[str, ...]] = ()
+
+    def compute(self, cells: GridArrays, partition: Partition, blocks: tuple[slice, slice, slice],
+                budget: int = BATCH_BYTES, progress=None, extra: dict | None = None) -> dict[str, np.ndarray]:
+        """:func:`block_variables` of a box (``extra``: the :attr:`fine_variables`, none here)."""
+        return block_variables(cells, partition, blocks, self, progress=progress, budget=budget)
+
+    def variable_names(self) -> list[str]:
+        """The names :meth:`compute` returns (:func:`block_variable_names`)."""
+        return block_variable_names(self)
+
+    def trailing(self, name: str) -> tuple[int, ...]:
+        """The shape of a variable per block: all are scalars."""
+        return ()
 
     def halo(self, partition: Partition) -> tuple[tuple[int, int, int], tuple[int, int, int]]:
         """Fine cells a box of whole blocks needs beyond its own, below and above per axis:

@@ -38,7 +38,7 @@ class Check:
     fix: str
 
 
-def _first_flat_index(mask) -> int:
+def first_flat_index(mask) -> int:
     """C-order flat index of the first set cell of a numpy or dask boolean array."""
     if not hasattr(mask, "dask"):
         return int(np.argmax(np.ravel(mask)))
@@ -105,7 +105,7 @@ def refuse_first(checks: list[Check], counts: tuple[int, ...], where: str) -> No
     """
     for check, count in zip(checks, counts):
         if count:
-            index = np.unravel_index(_first_flat_index(check.mask.data), check.mask.shape)
+            index = np.unravel_index(first_flat_index(check.mask.data), check.mask.shape)
             at = "(" + ", ".join(f"{d}={i}" for d, i in zip(check.mask.dims, index)) + ")"
             raise InputError(f"{where}: variable '{check.name}' {check.problem} in {count} cell(s), first at "
                              f"{at}; {check.fix}")

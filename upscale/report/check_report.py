@@ -139,8 +139,9 @@ def _comparison_section(metrics: dict) -> str:
                     rows + ([floors] if floors else []), 1))
 
 
-def build_report(folder, metrics: dict, arrays: dict) -> dict[str, Path]:
-    """Compose the figures and tables of the checks that ran and write the report."""
+def build_report(folder, metrics: dict, arrays: dict, extra: tuple = ()) -> dict[str, Path]:
+    """Compose the figures and tables of the checks that ran and write the report;
+    ``extra``: more (title, HTML) sections, placed last."""
     ran = metrics["checks"]["run"]
     sections = [("Whole-model check", _steady_part(metrics))] if "steady" in ran else []
     if "diagonal" in ran:
@@ -159,6 +160,7 @@ def build_report(folder, metrics: dict, arrays: dict) -> dict[str, Path]:
     left_out = metrics["checks"]["left_out"]
     if left_out:
         sections.append(("Checks left out", f"<p>Not run for this report: {html.escape(', '.join(left_out))}.</p>"))
+    sections += list(extra)
     return write_report(folder, "upscale check report", _header(metrics), sections, metrics)
 
 

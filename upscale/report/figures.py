@@ -276,3 +276,47 @@ def layer_profile_figure(stats: dict, groupings: dict):
     right.set_xlim(left=0.0)
     left.legend(loc="best", fontsize="small")
     return figure
+
+
+def two_phase_curves(panels: list[dict]) -> Figure:
+    """Upscaled curves of a few coarse blocks against the fine rock curves.
+
+    Parameters
+    ----------
+    panels : list of dict
+        One per block: ``title``; ``sw`` (P,); ``kr``, a dict of label -> (P,) values (e.g.
+        "krw x"); ``pc`` (P,) in bar (NaN where unbounded); ``rocks``, a list of dicts with
+        ``name``, ``sw``, ``krw``, ``kro`` and ``pc`` (bar) of each rock type in the block.
+
+    Returns
+    -------
+    Figure
+        Top row relative permeability against Sw, bottom row capillary pressure (log scale);
+        the block's curves thick with markers, the rock curves thin and grey.
+    """
+    figure = Figure(figsize=(4.2 * max(len(panels), 1), 7.5), layout="constrained")
+    axes = np.asarray(figure.subplots(2, max(len(panels), 1), squeeze=False))
+    styles = ("-", "--", ":")
+    for column, panel in enumerate(panels):
+        top, bottom = axes[0, column], axes[1, column]
+        for n, rock in enumerate(panel["rocks"]):
+            shade = str(0.35 + 0.4 * n / max(len(panel["rocks"]), 1))
+            top.plot(rock["sw"], rock["krw"], color=shade, linewidth=1, label=f"{rock['name']} (fine)")
+            top.plot(rock["sw"], rock["kro"], color=shade, linewidth=1)
+            bottom.semilogy(rock["sw"], rock["pc"], color=shade, linewidth=1, label=f"{rock['name']} (fine)")
+        for n, (label, values) in enumerate(panel["kr"].items()):
+            colour = "tab:blue" if label.startswith("krw") else "tab:red"
+            top.plot(panel["sw"], values, color=colour, linestyle=styles[(n // 2) % 3], marker="o", markersize=3,
+                     linewidth=1.8, label=label)
+        bottom.semilogy(panel["sw"], panel["pc"], color="black", marker="o", markersize=3, linewidth=1.8,
+                        label="block")
+        top.set_title(panel["title"], fontsize="medium")
+        top.set_ylabel("relative permeability")
+        bottom.set_ylabel("capillary pressure (bar)")
+        for ax in (top, bottom):
+            ax.set_xlabel("water saturation Sw")
+            ax.set_xlim(0.0, 1.0)
+            ax.grid(True, alpha=0.3)
+            ax.legend(fontsize="x-small")
+        top.set_ylim(0.0, 1.0)
+    return figure

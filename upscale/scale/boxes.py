@@ -71,8 +71,8 @@ def plan_boxes(partition: Partition, halo, cells: int) -> tuple[list[slice], lis
 
 def lazy_block_variables(fine: xr.Dataset, partition: Partition, recipe, memory: int | None = None,
                          box: tuple[int, int, int] | None = None) -> dict:
-    """The per-block variables of :func:`upscale.core.upscaling.block_variables` for a
-    lazy field, one task per box.
+    """The per-block variables of a recipe (:func:`upscale.core.upscaling.block_variables`,
+    or :func:`upscale.core.two_phase.two_phase_variables`) for a lazy field, one task per box.
 
     Parameters
     ----------
@@ -80,8 +80,9 @@ def lazy_block_variables(fine: xr.Dataset, partition: Partition, recipe, memory:
         A normalised, dask-backed field.
     partition : Partition
         The coarse blocks.
-    recipe : Recipe
-        What to compute.
+    recipe : Recipe or TwoPhaseRecipe
+        What to compute: its ``compute``, ``variable_names``, ``trailing``, ``halo`` and
+        ``fine_variables``.
     memory : int, optional
         Budget of one process holding one box, bytes; None: :func:`default_memory`.
     box : tuple of int, optional
@@ -121,8 +122,8 @@ def _box_tasks(fine: xr.Dataset, partition: Partition, recipe, boxes, halo, budg
 
     fine_chunks = tuple(tuple(int(partition.edges[a][b.stop] - partition.edges[a][b.start]) for b in boxes[a])
                         for a in range(3))
-    cube = {n: da.asarray(fine[n].data).rechunk(fine_chunks) for n in ("dz", "kx", "ky", "kz", "porosity", "ntg",
-                                                                       "active")}
+    names = ("dz", "kx", "ky", "kz", "porosity", "ntg", "active") + tuple(recipe.fine_variables)
+    cube = {n: da.asarray(fine[n].data).rechunk(fine_chunks) for n in names}
     lines = {n: np.asarray(fine[n].values, dtype=float) for n in ("dx", "dy")}
     grid = [len(b) for b in boxes]
     tasks = np.empty(grid, dtype=object)
@@ -138,14 +139,15 @@ def _box_tasks(fine: xr.Dataset, partition: Partition, recipe, boxes, halo, budg
 
 def _box_task(dx, dy, window_partition, blocks, recipe, budget: int, pinch: bool, **values) -> dict:
     """The task of one box: its window's cells as GridArrays (``pinch``: with pinch-out
-    connections), then block_variables."""
+    connections; and the recipe's other fine variables), then the recipe's per-block
+    variables (:meth:`Recipe.compute`)."""
     from ..core.grid import GridArrays
-    from ..core.upscaling import block_variables
 
-    values["active"] = np.asarray(values["active"]).astype(bool)
-    cells = GridArrays(dx=dx, dy=dy, pinch_connections=pinch,
-                       **{n: np.asarray(v, dtype=v.dtype) for n, v in values.items()})
-    return block_variables(cells, window_partition, blocks, recipe, budget=budget)
+    values = {n: np.asarray(v, dtype=v.dtype) for n, v in values.items()}
+    values["active"] = values["active"].astype(bool)
+    extra = {n: values.pop(n) for n in recipe.fine_variables}
+    cells = GridArrays(dx=dx, dy=dy, pinch_connections=pinch, **values)
+    return recipe.compute(cells, window_partition, blocks, budget, extra=extra)
 
 
 def _assemble(tasks: np.ndarray, partition: Partition, recipe, boxes) -> dict:
@@ -157,18 +159,18 @@ def _assemble(tasks: np.ndarray, partition: Partition, recipe, boxes) -> dict:
     out = {}
     for name in names:
         pieces = np.empty(tasks.shape, dtype=object)
+        trailing = recipe.trailing(name)
         for index in np.ndindex(*tasks.shape):
             dtype = np.int8 if name == "active" else float
-            pieces[index] = da.from_delayed(dask.delayed(operator.getitem)(tasks[index], name), shapes(name, index),
-                                            dtype)
+            piece = da.from_delayed(dask.delayed(operator.getitem)(tasks[index], name),
+                                    shapes(name, index) + trailing, dtype)
+            pieces[index] = [piece] if trailing else piece  # da.block joins the last axes: nest one deeper
         out[name] = da.block(pieces.tolist())
     return out
 
 
 def _box_outputs(partition: Partition, recipe, boxes):
     """Names of the variables a box task returns, and their shape per box index."""
-    from ..core.upscaling import block_variable_names
-
     def shape(name: str, index) -> tuple[int, int, int]:
         """Blocks of box ``index``, one fewer along its axis for a face variable at the end."""
         sizes = [boxes[a][i].stop - boxes[a][i].start for a, i in enumerate(index)]
@@ -178,7 +180,7 @@ def _box_outputs(partition: Partition, recipe, boxes):
                 sizes[axis] -= 1
         return tuple(sizes)
 
-    return block_variable_names(recipe), shape
+    return recipe.variable_names(), shape
 
 
 def _axis_of(dim: str) -> int:
