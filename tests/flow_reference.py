@@ -9,6 +9,12 @@ through the half transmissibility of the cells on it. A cell of zero length (pin
 dz = 0) has zero volume and so no transmissibility at all. Permeability in mD, lengths in
 m, rates in mD*m per unit pressure drop.
 
+With ``pinch=True`` the pinched cells are taken out instead (common practice for pinch-out
+connections, no source): the real cells just above and below a run of them in a column are
+joined directly, by the series pair of their vertical halves, and a pressure held on the
+top (bottom) face acts on the first real cell from the top (bottom) of each column through
+its own half. The pinched cells carry nothing and are left out of the solve.
+
 Conventions of the block (or model) permeability, as the README defines it: k = Q L^2 / V
 with L the sum of dx (dy) along x (y) and, along z, the mean thickness V / (Lx Ly), and V
 the total bulk volume.
@@ -71,6 +77,29 @@ def _couplings(half, wrap: bool):
     return np.concatenate(rows), np.concatenate(cols), np.concatenate(vals)
 
 
+def _pinch_joins(half_z, dz):
+    """(rows, cols, values) of the direct couplings across runs of pinched cells (dz = 0)
+    between two real cells of a column, and per column its first and last real cell
+    (flat indices, -1 where the column has none), by a plain walk down every column."""
+    shape = half_z.shape
+    index = np.arange(half_z.size).reshape(shape)
+    rows, cols, vals = [], [], []
+    ends = np.full(shape[:2] + (2,), -1)
+    for i in range(shape[0]):
+        for j in range(shape[1]):
+            real = [k for k in range(shape[2]) if dz[i, j, k] > 0]
+            if real:
+                ends[i, j] = index[i, j, real[0]], index[i, j, real[-1]]
+            for upper, lower in zip(real, real[1:]):
+                if lower > upper + 1:
+                    t = float(_series(half_z[i, j, upper], half_z[i, j, lower]))
+                    p, q = index[i, j, upper], index[i, j, lower]
+                    rows += [p, q, p, q]
+                    cols += [p, q, q, p]
+                    vals += [t, t, -t, -t]
+    return (np.array(rows, dtype=int), np.array(cols, dtype=int), np.array(vals, dtype=float)), ends
+
+
 def _reached(A, held: np.ndarray) -> np.ndarray:
     """Cells joined through non-zero couplings to a cell with a held (Dirichlet) term."""
     n = A.shape[0]
@@ -127,13 +156,21 @@ def _held_faces(half, axes):
             for a in axes for high in (False, True)]
 
 
-def sealed_problem(k, dx, dy, dz, axis: int) -> Problem:
+def sealed_problem(k, dx, dy, dz, axis: int, pinch: bool = False) -> Problem:
     """No-flow sides, pressure 1 held on the low face and 0 on the high face along
-    ``axis``; the value is the block (model) permeability Q L^2 / V, Q the inflow rate."""
+    ``axis``; the value is the block (model) permeability Q L^2 / V, Q the inflow rate.
+    ``pinch``: with the pinched cells taken out (see the module notes)."""
     half = half_transmissibilities(k, dx, dy, dz)
     shape, n = half[0].shape, half[0].size
     rows, cols, vals = _couplings(half, wrap=False)
     (_, _, low_cells, low), (_, _, high_cells, high) = _held_faces(half, [axis])
+    if pinch:
+        joins, ends = _pinch_joins(half[2], cell_lengths(dx, dy, dz)[2])
+        rows, cols, vals = (np.concatenate([a, b]) for a, b in zip((rows, cols, vals), joins))
+        if axis == 2:
+            kept = ends[..., 0] >= 0
+            low_cells, high_cells = ends[..., 0][kept], ends[..., 1][kept]
+            low, high = half[2].ravel()[low_cells], half[2].ravel()[high_cells]
     diagonal, b, c = np.zeros(n), np.zeros(n), np.zeros(n)
     np.add.at(diagonal, low_cells, low)
     np.add.at(diagonal, high_cells, high)

@@ -8,6 +8,7 @@ import xarray as xr
 
 from upscale.checks.summary import field_summary
 from upscale.errors import InputError
+from upscale.io.pinch_outs import with_pinch_outs
 from upscale.io.schema import fine_dataset
 from upscale.io.validation import validate
 from upscale.report.text import format_summary
@@ -47,6 +48,9 @@ def test_counts_and_sizes():
     assert s["pinched_cells"] == 3
     # By hand: (0, 0, 1) and (2, 1, 3) have active cells above and below; (3, 2, 0) is on top.
     assert s["pinched_between_active"] == 2
+    # each of those two is a run of its own between the active cells just above and below
+    assert s["pinch_outs"] == {"connections": "yes", "thickness": 0.0, "units": "m", "runs_between_active": 2,
+                               "cells_in_those_runs": 2, "connections_made": 2}
     expected_active = NX * NY * NZ - 3 - 2  # 3 pinched (one also flagged) + 2 flagged only
     assert s["active_cells"] == expected_active
     sizes = s["sizes"]
@@ -271,9 +275,11 @@ def test_format_summary():
         assert word in text, word
     assert f"{NX} x {NY} x {NZ}" in text
     assert f"{s['active_cells']} active" in text
-    assert "2 of them between active cells of their column" in text
-    clear = format_summary({**s, "pinched_between_active": 0})
+    assert "2 of them between active cells of their column: 2 pinch-out connection(s) made" in text
+    clear = format_summary({**s, "pinch_outs": {**s["pinch_outs"], "runs_between_active": 0}})
     assert "pinched (dz = 0)" in clear and "between active cells" not in clear
+    sealed = format_summary({**s, "pinch_outs": {**s["pinch_outs"], "connections": "no", "connections_made": 0}})
+    assert "2 of them between active cells of their column: no flow crosses them" in sealed
     assert f"{s['volumes']['pore']:.4g}" in text
     # One row per variable, with its six statistics in order.
     row = next(line for line in text.splitlines() if line.startswith("porosity"))
@@ -286,6 +292,25 @@ def test_format_summary():
         h = s["heterogeneity"][axis]
         assert values == pytest.approx([h["coefficient_of_variation"], h["dykstra_parsons"], h["lorenz"]],
                                        rel=1e-3)
+
+
+def test_pinch_out_connections_counted_by_hand():
+    # One column of ten layers, active (A), pinched (P) or inactive (I), dz in m:
+    # A1 P P A2 I1.5 P A0.4 P A3 P. Runs with an active cell just above and below: layers
+    # 1-2 and layer 7 (3 cells); layer 5 lies below an inactive cell, layer 9 reaches the
+    # bottom. With a threshold of 0.5 m layer 6 counts as pinched: the run 5-7 lies below
+    # the inactive cell, only layers 1-2 remain.
+    dz = np.array([1.0, 0.0, 0.0, 2.0, 1.5, 0.0, 0.4, 0.0, 3.0, 0.0]).reshape(1, 1, 10)
+    active = np.ones(dz.shape, dtype=np.int8)
+    active[0, 0, 4] = 0
+    k = np.full(dz.shape, 10.0)
+    ds = validate(fine_dataset(k, k, k, np.full(dz.shape, 0.2), np.ones(1), np.ones(1), dz, active=active))
+    pinch = field_summary(ds)["pinch_outs"]
+    assert (pinch["runs_between_active"], pinch["cells_in_those_runs"], pinch["connections_made"]) == (2, 3, 2)
+    thin = field_summary(with_pinch_outs(ds, thickness=0.5))["pinch_outs"]
+    assert (thin["runs_between_active"], thin["cells_in_those_runs"], thin["thickness"]) == (1, 2, 0.5)
+    off = field_summary(with_pinch_outs(ds, connections=False))["pinch_outs"]
+    assert (off["runs_between_active"], off["connections_made"], off["connections"]) == (2, 0, "no")
 
 
 def test_unnormalised_field_is_refused():

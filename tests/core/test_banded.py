@@ -142,8 +142,10 @@ def _two_point_couplings(k, lengths, periodic: bool):
 def test_compiled_couplings_equal_the_two_point_formulas(shape, periodic, seed):
     # The compiled one-pass assembly against the plain loop above (written here, not
     # upscale's own two-point module), with zero permeabilities and zero thicknesses among
-    # the cells. Same formulas, other order of operations: 1e-14 (half) and 1e-13 (sums of
-    # up to six terms) relative, a few units of round-off.
+    # the cells (without pinch-out connections: the kernel's own formulas; the connections
+    # are checked against stacked cells and tests/flow_reference.py in test_pinch_outs.py).
+    # Same formulas, other order of operations: 1e-14 (half) and 1e-13 (sums of up to six
+    # terms) relative, a few units of round-off.
     rng = np.random.default_rng(seed)
     nb = 3
     full = (nb,) + shape
@@ -151,7 +153,7 @@ def test_compiled_couplings_equal_the_two_point_formulas(shape, periodic, seed):
     lengths = (np.broadcast_to(rng.uniform(1, 5, (nb, shape[0], 1, 1)), full),
                np.broadcast_to(rng.uniform(1, 5, (nb, 1, shape[1], 1)), full),
                np.where(rng.random(full) < 0.1, 0.0, rng.uniform(0.1, 2, full)))
-    domain = LocalDomain(k=k, lengths=lengths, target=tuple(slice(0, s) for s in shape))
+    domain = LocalDomain(k=k, lengths=lengths, target=tuple(slice(0, s) for s in shape), pinch_connections=False)
     couplings, (first, second, values), total = _couplings(domain, periodic)
     half, matrix_entries, expected_total = _two_point_couplings(k, lengths, periodic)
     for a in range(3):

@@ -170,3 +170,93 @@ def test_per_direction_methods_and_ntg_convention():
     assert float(coarse.kx[0, 0, 0]) == pytest.approx(50.5)
     assert float(coarse.kz[0, 0, 0]) == pytest.approx(2 / (1 / 100 + 1))
     assert coarse.attrs["method"] == "x: arithmetic, y: arithmetic, z: harmonic"
+
+
+def test_static_average_power_and_its_refusals():
+    # The power method through static_average: (sum w k^omega / sum w)^(1/omega) computed
+    # here with numpy (Journel, Deutsch & Desbarats 1986); rounding only (1e-12). A missing
+    # or non-finite exponent and an unknown method are refused naming what to give.
+    from upscale.core.static import STATIC_METHODS
+    from upscale.errors import InputError
+
+    rng = np.random.default_rng(8)
+    k = lognormal((4, 2, 2), 1.0, 8)
+    w = rng.uniform(0.5, 2.0, k.shape)
+    part = make_partition(k.shape, ratio=(2, 2, 2))
+    got = static_average(k, w, part, "power", omega=0.5)
+    for block, cut in ((0, np.s_[:2]), (1, np.s_[2:])):
+        expected = (np.sum(w[cut] * k[cut] ** 0.5) / np.sum(w[cut])) ** 2
+        assert got[block, 0, 0] == pytest.approx(expected, rel=1e-12)
+    for omega in (None, float("nan"), float("inf")):
+        with pytest.raises(InputError, match=r"^method 'power' needs a finite exponent omega \(e.g. --omega 0.5\)$"):
+            static_average(k, w, part, "power", omega=omega)
+    with pytest.raises(InputError, match="^unknown static method 'median'; choose from arithmetic, harmonic, "
+                                         "geometric, power$"):
+        static_average(k, w, part, "median")
+    assert STATIC_METHODS == ("arithmetic", "harmonic", "geometric", "power")
+
+
+def test_zero_permeability_cells_and_empty_blocks():
+    # By hand, on three blocks of two cells along x (weights 0.25 and 0.5 m3, below one so
+    # that no rule on a weight of 1 can pass): block 0 holds a cell of k = 0, block 1 none,
+    # block 2 no weight at all. Wiener (1912): a zero cell in series closes the block
+    # (harmonic, and the geometric and negative powers below it, exactly 0), while in
+    # parallel it only dilutes (arithmetic w2 k2 / (w1 + w2), positive powers likewise).
+    # A block without weight is 0. No 0/0 or log(0) warnings on the way (inactive regions
+    # are common; numpy warnings would reach the terminal).
+    k = np.array([0.0, 4.0, 1.0, 9.0, 5.0, 5.0]).reshape(6, 1, 1)
+    w = np.array([0.25, 0.5, 0.25, 0.5, 0.0, 0.0]).reshape(6, 1, 1)
+    part = make_partition(k.shape, ratio=(2, 1, 1))
+    with np.errstate(all="raise"):
+        results = {omega: power_average(k, w, part, omega)[:, 0, 0] for omega in (1.0, 0.5, 0.0, -0.5, -1.0)}
+        for method in ("arithmetic", "harmonic", "geometric"):
+            static_average(k.astype(np.float32), w, part, method)
+    mean = {omega: (0.25 * 1.0 ** omega + 0.5 * 9.0 ** omega) / 0.75 for omega in (1.0, 0.5, -0.5, -1.0)}
+    exact = {1.0: [0.5 * 4.0 / 0.75, mean[1.0], 0.0], 0.5: [(0.5 * 2.0 / 0.75) ** 2, mean[0.5] ** 2, 0.0],
+             0.0: [0.0, np.exp(0.5 * np.log(9.0) / 0.75), 0.0], -0.5: [0.0, mean[-0.5] ** -2, 0.0],
+             -1.0: [0.0, 1.0 / mean[-1.0], 0.0]}
+    for omega, expected in exact.items():
+        np.testing.assert_allclose(results[omega], expected, rtol=1e-14, atol=0)   # a few roundings
+
+
+def test_averages_of_single_precision_input_are_computed_in_double():
+    # Fields are often stored as float32: the average of the same (exactly representable)
+    # values must not carry float32 rounding (1e-7), only double rounding (1e-12 here).
+    k = lognormal((2, 2, 2), 1.0, 4).astype(np.float32)
+    w = np.ones(k.shape)
+    part = make_partition(k.shape, ratio=(2, 2, 2))
+    exact = k.astype(float)
+    for omega, expected in ((1.0, exact.mean()), (0.3, np.mean(exact ** 0.3) ** (1 / 0.3)),
+                            (-1.0, 1.0 / np.mean(1.0 / exact)), (0.0, np.exp(np.mean(np.log(exact))))):
+        assert power_average(k, w, part, omega)[0, 0, 0] == pytest.approx(expected, rel=1e-12)
+
+
+def test_divide_or_zero_broadcasts_the_denominator():
+    from upscale.core.static import divide_or_zero
+
+    np.testing.assert_array_equal(divide_or_zero(np.array(6.0), np.array([2.0, 0.0, 3.0])), [3.0, 0.0, 2.0])
+
+
+def test_cardwell_parsons_with_a_closed_cell_and_pinched_cells():
+    # Cardwell & Parsons (1945) by hand on 2 x 2 x 1 unit cells, flow along x, one closed
+    # cell (k = 0 at x = 0, y = 1): lower = parallel of the columns along x, each a series:
+    # column y = 0 (1 and 3 mD) 1 / (1 + 1/3) = 0.75, column y = 1 closed: 0.75 in all;
+    # upper = series of the slices across x, each a parallel: slice x = 0 (1 + 0), slice
+    # x = 1 (3 + 2), 1 / (1/1 + 1/5) = 5/6. Block k = G L^2 / V with L = 2, V = 4: G.
+    k = np.array([[1.0, 0.0], [3.0, 2.0]]).reshape(2, 2, 1)
+    part = make_partition(k.shape, ratio=(2, 2, 1))
+    with np.errstate(all="raise"):   # the closed cell's infinite resistance without 1/0
+        lower, upper = cardwell_parsons(k, np.ones(2), np.ones(2), np.ones(k.shape), part, 0)
+    assert lower[0, 0, 0] == pytest.approx(0.75, rel=1e-14)
+    assert upper[0, 0, 0] == pytest.approx(5 / 6, rel=1e-14)
+    # Pinched cells (dz = 0) have no length along z: bounds along z stay finite, ordered,
+    # and are computed without a 0/0.
+    rng = np.random.default_rng(2)
+    k = lognormal((3, 3, 4), 1.0, 2)
+    dz = rng.uniform(0.5, 2.0, k.shape)
+    dz[1, 1, 2] = dz[0, 2, 0] = 0.0
+    part = make_partition(k.shape, ratio=(3, 3, 4))
+    with np.errstate(all="raise"):
+        lower, upper = cardwell_parsons(k, np.ones(3), np.ones(3), dz, part, 2)
+    assert np.isfinite(lower).all() and np.isfinite(upper).all()
+    assert 0 < lower[0, 0, 0] <= upper[0, 0, 0]

@@ -284,6 +284,12 @@ CASES = [
          with_args("--ratio", "2", "2", "2", "--method", "arithmetic", "--units", "imperial")),
     Case("negative-border", valid, ("border", "-1", ">= 0"),
          with_args("--ratio", "2", "2", "2", "--method", "flow", "--border", "-1")),
+    Case("negative-pinch-thickness", valid, ("--pinch-thickness", ">= 0", "'-0.5'"),
+         with_args("--ratio", "2", "2", "2", "--pinch-thickness", "-0.5")),
+    Case("pinch-thickness-not-a-number", valid, ("--pinch-thickness", "a number >= 0", "'thin'"),
+         with_args("--ratio", "2", "2", "2", "--pinch-thickness", "thin")),
+    Case("pinch-thickness-nan", valid, ("--pinch-thickness", "finite number >= 0", "'nan'"),
+         with_args("--ratio", "2", "2", "2", "--pinch-thickness", "nan")),
     # --- two-phase: the rock table, the facies, the options
     Case("rocks-missing", valid, ("rocks.toml", "rock table not found"), TWO_PHASE),
     Case("rocks-not-toml", two_phase_field("[fluids\nwater = "), ("rocks.toml", "not a valid TOML rock table"),
@@ -585,7 +591,10 @@ def test_api_truncated_file_raises_input_error(tmp_path, small_fine_factory):
     ({"ratio": (2, 2, 2), "method": "power"}, "'power' needs a finite exponent omega"),
     ({"edges": {"z": [0, 5, 3]}, "method": "arithmetic"}, "strictly increasing"),
     ({"ratio": (2, 2, 2), "method": "flow", "bc": "weird"}, "unknown boundary condition 'weird'"),
-], ids=["ratio-zero", "unknown-method", "power-without-omega", "edges-unsorted", "unknown-bc"])
+    ({"ratio": (2, 2, 2), "pinch_thickness": -1.0}, "pinch thickness must be a finite number >= 0"),
+    ({"ratio": (2, 2, 2), "pinch_thickness": "thin"}, "pinch thickness must be a number >= 0"),
+], ids=["ratio-zero", "unknown-method", "power-without-omega", "edges-unsorted", "unknown-bc", "negative-pinch",
+        "pinch-not-a-number"])
 def test_api_bad_options_raise_input_error(kwargs, message, small_fine):
     fine = validate(small_fine)
     with pytest.raises(upscale.InputError, match=message.replace("(", r"\(")):

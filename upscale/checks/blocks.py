@@ -55,7 +55,8 @@ def block_errors(cells: GridArrays, partition: Partition, flow_k, tolerance: flo
     active = partition.block_sum(cells.active) > 0
     summary, arrays = {"tolerance": tolerance}, {}
     for axis, name in enumerate(AXES):
-        lower, upper = cardwell_parsons(k[axis], cells.dx, cells.dy, cells.dz, partition, axis)
+        lower, upper = cardwell_parsons(k[axis], cells.dx, cells.dy, cells.dz, partition, axis,
+                                        cells.pinch_connections)
         reference = flow_k[axis]
         valid = active & (reference > 0)
         width = np.divide(upper, lower, out=np.full(lower.shape, np.inf), where=lower > 0)

@@ -63,13 +63,13 @@ def _homogeneous_models(cells: GridArrays, partition: Partition):
         positive = cells.active & (k > 0)
         means.append(float(np.exp(np.log(k[positive]).mean())) if positive.any() else 0.0)
     fine_k = tuple(np.where(cells.active, m, 0.0) for m in means)
-    fine_half, fine_faces = transmissibilities(fine_k, cells.dx, cells.dy, cells.dz)
+    fine_half, fine_faces = transmissibilities(fine_k, cells.dx, cells.dy, cells.dz, cells.pinch_connections)
     dx = np.add.reduceat(cells.dx, partition.edges[0][:-1])
     dy = np.add.reduceat(cells.dy, partition.edges[1][:-1])
     dz = block_length(partition, cells.dx, cells.dy, cells.dz, 2)
     active = partition.block_sum(cells.active) > 0
     coarse_k = tuple(np.where(active, m, 0.0) for m in means)
-    coarse_half, faces = transmissibilities(coarse_k, dx, dy, dz)
+    coarse_half, faces = transmissibilities(coarse_k, dx, dy, dz, cells.pinch_connections)
     return (cells, fine_faces, fine_half), ((dx, dy, dz), faces, coarse_half)
 
 
@@ -86,7 +86,8 @@ def fine_patch_rates(cells: GridArrays, partition: Partition, tolerance: float =
     if homogeneous:
         (_, faces, half), _ = _homogeneous_models(cells, partition)
     else:
-        half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)
+        half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz,
+                                         cells.pinch_connections)
     processes = axis_processes(math.prod(cells.shape), direct_limit)
     rates = forked_map(_fine_flow, (cells, partition, faces, half, tolerance, direct_limit), list(PATCH_FLOWS),
                        processes)

@@ -4,11 +4,16 @@ one JSON-ready metrics dict (the metrics.json of ``upscale check``).
 
 from __future__ import annotations
 
+import logging
+import math
+
 import xarray as xr
 
 from ..core.grid import AXES
+from ..core.units import LENGTH_TO_M
 from ..errors import InputError
 from ..io.coarse_file import coarse_partition
+from ..io.pinch_outs import pinch_settings, thickness_units, with_pinch_outs
 from ..io.schema import arrays
 from ..io.validation import validate
 from .blocks import TOLERANCE, block_errors, flow_reference
@@ -17,6 +22,8 @@ from .faces import barrier_summary
 from .layering import grouping_of_coarse_grid
 from .steady import coarse_model_check, steady_check
 from .transient import check_options, transient_check
+
+log = logging.getLogger(__name__)
 
 CHECKS = ("steady", "diagonal", "transient", "blocks", "layering")
 
@@ -34,8 +41,8 @@ def parse_checks(checks) -> tuple[str, ...]:
 
 
 def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERANCE,
-                 transient: dict | None = None, say=None, checks=None, others: dict | None = None
-                 ) -> tuple[dict, dict]:
+                 transient: dict | None = None, say=None, checks=None, others: dict | None = None,
+                 pinch_connections: bool | None = None, pinch_thickness: float | None = None) -> tuple[dict, dict]:
     """The chosen checks of a coarse grid against its fine field.
 
     ``transient``: keyword arguments of :func:`upscale.checks.transient.transient_check`
@@ -43,15 +50,16 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
     called with a short line as each stage starts (progress), or None; ``checks``: see
     :func:`parse_checks`; ``others``: label -> other coarse grids of the same partition,
     whose steady and diagonal errors are reported beside this one's against the same
-    fine solutions (``metrics["comparison"]``).
+    fine solutions (``metrics["comparison"]``); ``pinch_connections``, ``pinch_thickness``:
+    the fine model's pinch-out settings (:func:`pinch_outs_of_fine`).
 
     Returns (metrics, arrays): metrics is JSON-ready (see README: global, layer_flow_share,
     pressure_rms, diagonal, transient, blocks, layering, multipliers, pore_volume, and
     ``checks`` with what ran and what was left out); arrays holds what the figures need.
     """
     chosen = parse_checks(checks)
-    fine = validate(fine, where="fine field")
     coarse = validate(coarse, where="coarse grid")
+    fine = pinch_outs_of_fine(validate(fine, where="fine field"), coarse, pinch_connections, pinch_thickness)
     cells = arrays(fine)
     partition = coarse_partition(coarse, cells.shape)
     if "transient" in chosen:
@@ -66,6 +74,25 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
         metrics["comparison"] = compare_grids(metrics, coarse, others, partition)
     metrics.update(_file_facts(fine, coarse, cells, partition))
     return metrics, arrays_
+
+
+def pinch_outs_of_fine(fine: xr.Dataset, coarse: xr.Dataset, connections: bool | None = None,
+                       thickness: float | None = None) -> xr.Dataset:
+    """The normalised fine field with its pinch-out settings applied
+    (:func:`upscale.io.pinch_outs.with_pinch_outs`): those given, else those the coarse grid
+    was made with (its attributes; connections and no threshold when it records none).
+    A fine model checked with other settings than its coarse grid's is warned about."""
+    made = pinch_settings(coarse)
+    recorded = made["thickness"] * LENGTH_TO_M.get(made["units"].lower(), 1.0) / LENGTH_TO_M.get(
+        thickness_units(fine).lower(), 1.0)
+    connections = made["connections"] if connections is None else bool(connections)
+    fine = with_pinch_outs(fine, connections, recorded if thickness is None else thickness)
+    if connections != made["connections"] or not math.isclose(float(fine.attrs["pinch_thickness"]), recorded):
+        log.warning("the fine model is checked with pinch-out connections %s and pinch thickness %g %s, the coarse "
+                    "grid was made with connections %s and thickness %g %s", "on" if connections else "off",
+                    fine.attrs["pinch_thickness"], fine.attrs["pinch_thickness_units"],
+                    "on" if made["connections"] else "off", made["thickness"], made["units"])
+    return fine
 
 
 def compare_grids(metrics: dict, coarse: xr.Dataset, others: dict, partition) -> dict:
@@ -143,13 +170,15 @@ def _file_facts(fine, coarse, cells, partition) -> dict:
                     "global_solves", "global_passes")},
     }
     facts["sector"] = fine.attrs.get("sector")  # a window of the model checked on its own, or None
+    facts["pinch_outs"] = {"fine": pinch_settings(fine), "coarse": pinch_settings(coarse)}
     facts["coarse"]["shape"] = list(partition.shape)
     facts["coarse"]["input_matches_fine"] = coarse.attrs.get("input_sha256") == fine.attrs.get("source_sha256")
     return facts
 
 
 def check(fine: xr.Dataset, coarse: xr.Dataset, checks=None, tolerance: float = TOLERANCE,
-          transient: dict | None = None) -> dict:
+          transient: dict | None = None, pinch_connections: bool | None = None,
+          pinch_thickness: float | None = None) -> dict:
     """``upscale.check``: every check of a coarse grid against its fine field.
 
     Parameters
@@ -167,6 +196,12 @@ def check(fine: xr.Dataset, coarse: xr.Dataset, checks=None, tolerance: float = 
     transient : dict, optional
         Options of the transient drainage check: drainage, face, column, compressibility
         (1/bar), viscosity (cP), steps_per_doubling.
+    pinch_connections : bool, optional
+        Whether the fine model passes vertical flow across pinched cells (pinch-out
+        connections); None: as the coarse grid was made (its attribute ``pinch_connections``).
+    pinch_thickness : float, optional
+        Fine cells thinner than this (the fine field's thickness units) count as pinched
+        out; None: as the coarse grid was made.
 
     Returns
     -------
@@ -177,4 +212,5 @@ def check(fine: xr.Dataset, coarse: xr.Dataset, checks=None, tolerance: float = 
         ``relative_error``, ``floor``), ``blocks``, ``transient``, ``layering``,
         ``multipliers``, ``pore_volume``, ``inputs``, ``coarse``, ``checks``.
     """
-    return check_models(fine, coarse, tolerance, transient, checks=checks)[0]
+    return check_models(fine, coarse, tolerance, transient, checks=checks, pinch_connections=pinch_connections,
+                        pinch_thickness=pinch_thickness)[0]

@@ -14,7 +14,9 @@ import xarray as xr
 
 from ..core.grid import AXES
 from ..core.heterogeneity import coefficient_of_variation, dykstra_parsons, lorenz
+from ..core.two_point import run_ends
 from ..errors import InputError
+from ..io.pinch_outs import pinch_settings
 from ..io.schema import CELL_VALUES, arrays
 
 PERCENTILES = (10, 50, 90)
@@ -75,14 +77,30 @@ def _transmissibility(ds: xr.Dataset) -> dict:
 
 
 def _pinched_between_active(dz: np.ndarray, active: np.ndarray) -> int:
-    """Pinched cells (dz = 0) with an active cell above and below them in their column:
-    where a pinch-out connection would join the two (upscale carries no flow across them)."""
+    """Pinched cells (dz = 0) with an active cell above and below them in their column."""
     active = np.asarray(active, dtype=bool)
     above = np.zeros_like(active)
     above[:, :, 1:] = np.logical_or.accumulate(active, axis=2)[:, :, :-1]
     below = np.zeros_like(active)
     below[:, :, :-1] = np.logical_or.accumulate(active[:, :, ::-1], axis=2)[:, :, ::-1][:, :, 1:]
     return int(np.count_nonzero((dz == 0) & above & below))
+
+
+def _pinch_outs(ds: xr.Dataset, fine) -> dict:
+    """The pinch-out settings and the connections they make: a run of pinched cells in a
+    column with an active cell just above and just below it (the real cells on either
+    side) is one connection."""
+    pinched = fine.dz == 0
+    above, below = run_ends(pinched)
+    # one more layer, inactive, stands for the column's ends: index nz, and -1 (from the end)
+    active = np.concatenate([fine.active, np.zeros_like(fine.active[..., :1])], axis=2)
+    joined = pinched & np.take_along_axis(active, above, axis=2) & np.take_along_axis(active, below, axis=2)
+    continued = np.concatenate([np.zeros_like(pinched[..., :1]), pinched[..., :-1]], axis=2)  # pinched above
+    runs = int(np.count_nonzero(joined & ~continued))
+    settings = pinch_settings(ds)
+    made = runs if settings["connections"] else 0
+    return {**settings, "connections": "yes" if settings["connections"] else "no", "runs_between_active": runs,
+            "cells_in_those_runs": int(np.count_nonzero(joined)), "connections_made": made}
 
 
 def field_summary(ds: xr.Dataset) -> dict:
@@ -98,7 +116,11 @@ def field_summary(ds: xr.Dataset) -> dict:
     dict
         ``shape`` [nx, ny, nz]; ``cells``, ``active_cells``, ``pinched_cells`` (dz == 0,
         active or not), ``pinched_between_active`` (those with an active cell above and
-        below in their column); ``sizes`` (m): dx, dy, dz min/max over all cells,
+        below in their column); ``pinch_outs``: the settings (``connections`` 'yes' or 'no',
+        ``thickness``, ``units``: :func:`upscale.io.pinch_outs.pinch_settings`), the runs of
+        pinched cells with an active cell just above and below (``runs_between_active``,
+        ``cells_in_those_runs``) and ``connections_made`` (those runs, or 0 without
+        connections); ``sizes`` (m): dx, dy, dz min/max over all cells,
         ``dz_min_positive``, ``length_x`` = sum dx, ``length_y`` = sum dy, and
         ``thickness`` min/max/mean over columns of the column total sum(dz); ``values``:
         for kx, ky, kz (mD), porosity, ntg (fractions) the min, p10, p50, p90, max and mean
@@ -120,6 +142,7 @@ def field_summary(ds: xr.Dataset) -> dict:
     fine = arrays(ds)
     return {
         **_counts(fine),
+        "pinch_outs": _pinch_outs(ds, fine),
         "sizes": _sizes(fine),
         "values": {name: {"units": UNITS[name], **_cell_statistics(getattr(fine, name)[fine.active])}
                    for name in CELL_VALUES},

@@ -37,7 +37,7 @@ from ..core.transient import (
     well_column,
     well_factors,
 )
-from ..core.two_point import cell_geometry, half_transmissibility
+from ..core.two_point import transmissibilities
 from ..core.units import METRIC_TRANSMISSIBILITY
 from ..errors import InputError
 from ..io.coarse_file import coarse_faces, coarse_partition, coarse_units, transmissibility_constant
@@ -100,11 +100,11 @@ def coarse_system(coarse: xr.Dataset, drainage: str = "face", face: str = "x-", 
 
 def _face_drain(cells, k, face: str) -> np.ndarray:
     """Drainage connection of the coarse cells on ``face``: their half-cell
-    transmissibility along the face's axis, metric."""
+    transmissibility along the face's axis, metric (across coarse cells pinched out at the
+    top or bottom with pinch-out connections, :func:`upscale.io.coarse_file.coarse_two_point`)."""
     axis, high = drainage_face(face)
-    volume, lengths = cell_geometry(cells.dx, cells.dy, cells.dz)
-    half = METRIC_TRANSMISSIBILITY * half_transmissibility(k[axis], volume, lengths[axis])
-    return face_connection(half, axis, high)
+    halves, _ = transmissibilities(k, cells.dx, cells.dy, cells.dz, cells.pinch_connections)
+    return face_connection(METRIC_TRANSMISSIBILITY * halves[axis], axis, high)
 
 
 def _well_drain(ds: xr.Dataset, cells, k, column, fine_shape, well_radius: float, description: dict) -> np.ndarray:

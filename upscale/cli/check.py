@@ -20,15 +20,17 @@ from ..scale.memory import PROCESS_BYTES, default_memory
 
 def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERANCE,
               transient: dict | None = None, quiet: bool = False, checks=None, compare=(), window=None,
-              memory: int | None = None, sections: tuple = ()) -> dict:
+              memory: int | None = None, pinch_connections: bool | None = None,
+              pinch_thickness: float | None = None, sections: tuple = ()) -> dict:
     """``upscale check``: print the whole-model comparison; write the report if asked.
 
     ``compare``: paths of other coarse grids of the same field and blocks, compared beside;
     ``window``: a sector ``X0:X1,Y0:Y1,Z0:Z1`` (fine indices on whole coarse blocks) checked
     as a model of its own, read alone from the fine file; ``memory``: the budget, bytes
     (default half the memory available): a whole model that needs more is refused before
-    any work, with a hint to check a sector; ``sections``: more (title, HTML) sections for
-    the report (the demo's two-phase curves).
+    any work, with a hint to check a sector; ``pinch_connections``, ``pinch_thickness``: the
+    fine model's pinch-out settings (None: as the coarse grid was made); ``sections``: more
+    (title, HTML) sections for the report (the demo's two-phase curves).
     """
     parse_checks(checks)  # refused before the files are read
     coarse = open_field(coarse_path)
@@ -44,7 +46,8 @@ def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERA
         if not quiet:
             print(f"upscale check [{time.perf_counter() - started:5.0f} s] {line}", file=sys.stderr, flush=True)
 
-    metrics, arrays = check_models(fine, coarse, tolerance, transient, say, checks, others)
+    metrics, arrays = check_models(fine, coarse, tolerance, transient, say, checks, others, pinch_connections,
+                                   pinch_thickness)
     print(format_check(metrics))
     if report_dir is not None:
         paths = build_report(report_dir, metrics, arrays, sections)

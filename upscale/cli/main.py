@@ -22,9 +22,12 @@ EXAMPLES = {
         upscale coarsen fine.nc -o coarse.nc --ratio 4 4 1 --edges z=0,3,10,20 --method arithmetic,arithmetic,harmonic
         upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --method flow --bc periodic --border 2 --multipliers
         upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --method flow --bc global
+        upscale coarsen fine.nc -o coarse.nc --ratio 5 5 5 --pinch-thickness 0.05
         upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --memory 2GB --workers 2
         upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --scheduler tcp://127.0.0.1:8786""",
-    "inspect": "upscale inspect fields/demo.nc",
+    "inspect": """\
+        upscale inspect fields/demo.nc
+        upscale inspect fine.nc --pinch-thickness 0.05 --json""",
     "make-field": """\
         upscale make-field lognormal -o fields/random.nc --shape 60 220 85 --sigma 2 --correlation 8 8 2 --seed 1
         upscale make-field layered -o fields/layers.nc --thickness 2 1 3 --permeability 100 1 500
@@ -93,6 +96,34 @@ def _add_parallel(p: argparse.ArgumentParser) -> None:
                    "--memory is then the budget of each worker)")
 
 
+def _add_pinch_outs(p: argparse.ArgumentParser, verb: str) -> None:
+    """The pinch-out options: --pinch-thickness, --no-pinch-connections. For ``check`` both
+    default to what the coarse grid was made with; for ``inspect`` the connections to what
+    the file records (a coarse grid's setting)."""
+    thickness = {"check": "default: as the coarse grid was made"}.get(verb, "default 0: only dz = 0")
+    connections = {"check": " (default: as the coarse grid was made)",
+                   "inspect": " (default: as the file records, else connections)"}.get(verb, "")
+    p.add_argument("--pinch-thickness", default=None if verb == "check" else "0", metavar="T",
+                   help="cells thinner than T, in the field's thickness units (those of its dz, m or ft), count "
+                   "as pinched out like cells of dz = 0: their volume is left out and they carry no flow of "
+                   f"their own ({thickness})")
+    p.add_argument("--no-pinch-connections", dest="pinch_connections", action="store_const", const=False,
+                   default=True if verb == "coarsen" else None,
+                   help="pinched cells seal their columns; by default vertical flow passes across a run of "
+                   "pinched cells between the real cells above and below as if they were neighbours (pinch-out "
+                   f"connections), in the fine and coarse models{connections}")
+
+
+def _pinch_options(args) -> dict:
+    """The pinch-out keywords of the API from the options, the thickness checked first
+    (a one-line refusal naming --pinch-thickness)."""
+    from ..io.pinch_outs import thickness_threshold
+
+    thickness = None if args.pinch_thickness is None else thickness_threshold(args.pinch_thickness,
+                                                                              "--pinch-thickness")
+    return {"pinch_connections": args.pinch_connections, "pinch_thickness": thickness}
+
+
 def _add_blocks(p: argparse.ArgumentParser) -> None:
     """The options of the coarse blocks: --ratio, --edges."""
     p.add_argument("--ratio", nargs=3, type=int, metavar=("RX", "RY", "RZ"),
@@ -119,6 +150,7 @@ def _coarsen_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--multipliers", action="store_true", help="compute flow-based transmissibility multipliers")
     p.add_argument("--multipliers-csv", metavar="FILE", help="also write all multipliers as CSV (i,j,k,direction,multiplier)")
     p.add_argument("--units", default="metric", help="transmissibility units: metric or field")
+    _add_pinch_outs(p, "coarsen")
     _add_parallel(p)
 
 
@@ -126,6 +158,7 @@ def _inspect_options(p: argparse.ArgumentParser) -> None:
     """Options of ``upscale inspect``."""
     p.add_argument("file", help="field or coarse grid (NetCDF)")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    _add_pinch_outs(p, "inspect")
 
 
 def _make_field_options(p: argparse.ArgumentParser) -> None:
@@ -177,6 +210,7 @@ def _check_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--viscosity", type=float, default=1.0, help="viscosity in cP (default 1)")
     p.add_argument("--steps-per-doubling", type=int, default=8,
                    help="implicit Euler steps per doubling of time (even, default 8)")
+    _add_pinch_outs(p, "check")
 
 
 def _layers_options(p: argparse.ArgumentParser) -> None:
@@ -284,6 +318,7 @@ def _coarsen(args) -> int:
     from ..scale.cluster import cluster
     from ..scale.stream import write
 
+    pinch = _pinch_options(args)
     out = check_output_path(args.output, inputs=(args.fine,))
     table = check_output_path(args.multipliers_csv, inputs=(args.fine, args.output)) if args.multipliers_csv else None
     if table and not args.multipliers:
@@ -292,7 +327,7 @@ def _coarsen(args) -> int:
         raise InputError("give --workers (local processes) or --scheduler (a running cluster), not both")
     options = dict(ratio=args.ratio, edges=dict(args.edges), method=args.method, bc=args.bc, border=args.border,
                    omega=args.omega, multipliers=args.multipliers, units=args.units,
-                   global_solves=args.global_solves, passes=args.passes)
+                   global_solves=args.global_solves, passes=args.passes, **pinch)
     plan = _memory_plan(args)
     chunked = args.box is not None or plan.chunked(args.fine, args.method, args.multipliers)
     if chunked:
@@ -371,10 +406,15 @@ def _memory_plan(args):
 def _inspect(args) -> int:
     """``upscale inspect``: the field summary as text or JSON."""
     from ..checks.summary import field_summary
+    from ..io.pinch_outs import with_pinch_outs
     from ..io.reading import open_field
+    from ..io.schema import pinch_connections
     from ..report.text import format_summary
 
-    summary = field_summary(open_field(args.file))
+    pinch = _pinch_options(args)
+    field = open_field(args.file)
+    recorded = pinch_connections(field) if pinch["pinch_connections"] is None else pinch["pinch_connections"]
+    summary = field_summary(with_pinch_outs(field, recorded, pinch["pinch_thickness"]))
     print(json.dumps(summary, indent=2) if args.json else format_summary(summary))
     return 0
 
@@ -441,7 +481,8 @@ def _check(args) -> int:
     from ..scale.memory import parse_memory
 
     run_check(args.fine, args.coarse, args.report, transient=transient, quiet=args.quiet, checks=args.checks,
-              compare=args.compare, window=args.window, memory=parse_memory(args.memory) if args.memory else None)
+              compare=args.compare, window=args.window, memory=parse_memory(args.memory) if args.memory else None,
+              **_pinch_options(args))
     return 0
 
 

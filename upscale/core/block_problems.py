@@ -37,7 +37,7 @@ from ..errors import InputError
 from .banded import solve_batch, solve_batch_with_lead
 from .grid import GridArrays
 from .partition import BlockGroup, Partition, block_groups
-from .two_point import harmonic_pair
+from .two_point import harmonic_pair, pinch_out_faces, pinch_out_faces_cyclic
 
 log = logging.getLogger(__name__)
 
@@ -82,11 +82,16 @@ class LocalDomain:
         Cell lengths along each axis, m.
     target : tuple of three slices
         The target block inside each domain (the rest is border ring).
+    pinch_connections : bool
+        Vertical flow passes across pinched cells (zero thickness) between the real cells
+        of a column, and from a domain end to the first real cell
+        (:func:`upscale.core.two_point.pinch_out_faces`).
     """
 
     k: tuple[np.ndarray, np.ndarray, np.ndarray]
     lengths: tuple[np.ndarray, np.ndarray, np.ndarray]
     target: tuple[slice, slice, slice]
+    pinch_connections: bool = True
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -180,7 +185,9 @@ class Couplings:
     Attributes
     ----------
     half : list of three ndarray, (nb, sx, sy, sz)
-        Half-cell values per axis.
+        Half-cell values per axis; along z with pinch-out connections, a pinched cell at a
+        domain end holds the value through which a pressure on that end reaches the
+        column's first real cell.
     inner : list of three ndarray
         Per axis, on the interior faces (n - 1 along the axis).
     wrap : list of three ndarray or None
@@ -276,6 +283,8 @@ def _couplings(domain: LocalDomain, periodic: bool):
         _fill_couplings(*(np.asarray(k, dtype=float) for k in domain.k),
                         *(np.asarray(length, dtype=float) for length in domain.lengths),
                         inner_start, wrap_start, half, values, total)
+    if domain.pinch_connections and shape[2] > 1:
+        _connect_pinch_outs(domain, half[2], values, total, inner_start[2], wrap_start[2])
     inner, wrap = [], []
     for a in range(3):
         faces = list((nb,) + shape)
@@ -289,6 +298,33 @@ def _couplings(domain: LocalDomain, periodic: bool):
         else:  # one cell along the axis: joined to its own image, outside the coupling list
             wrap.append(harmonic_pair(half[a], half[a]))
     return Couplings(list(half), inner, wrap), (first, second, values), total
+
+
+def _connect_pinch_outs(domain: LocalDomain, half_z, values, total, start: int, wrap_start: int) -> None:
+    """Put the pinch-out connections (:func:`upscale.core.two_point.pinch_out_faces`, or its
+    cyclic form on periodic domains) into the vertical couplings of the domains holding a
+    pinched cell: their coupling list ``values`` (nb, E), coupling sums ``total`` and, at
+    the domain ends, half values ``half_z`` (nb, sx, sy, sz), all in place."""
+    pinched = domain.lengths[2] == 0
+    rows = np.flatnonzero(pinched.reshape(domain.count, -1).any(axis=1))
+    if not rows.size:
+        return
+    nb, (sx, sy, sz) = rows.size, domain.shape
+    pinched, h = np.broadcast_to(pinched, half_z.shape)[rows], half_z[rows]
+    inner = values[rows, start:start + sx * sy * (sz - 1)].reshape(nb, sx, sy, sz - 1)
+    sums = total[rows]
+    if wrap_start >= 0:
+        faces, wrap = pinch_out_faces_cyclic(h, pinched)
+        old = values[rows, wrap_start:wrap_start + sx * sy].reshape(nb, sx, sy)
+        sums[..., -1] += wrap - old
+        sums[..., 0] += wrap - old
+        values[rows, wrap_start:wrap_start + sx * sy] = wrap.reshape(nb, -1)
+    else:
+        faces, half_z[rows] = pinch_out_faces(h, pinched)
+    sums[..., :-1] += faces - inner
+    sums[..., 1:] += faces - inner
+    values[rows, start:start + sx * sy * (sz - 1)] = faces.reshape(nb, -1)
+    total[rows] = sums
 
 
 @dataclass
@@ -474,20 +510,41 @@ def _face_values(domain, couplings: Couplings, p, boundary: Boundary, bc: str, c
             image = first - jump
             q_lo = q_hi = couplings.wrap[a] * (last - image)
             if with_pressure:
-                p_hi = _interpolate(h_last, last, h_first, image)
+                p_hi = _interpolate(h_last, last, h_first, image, q_hi, _pinched_ends(domain, a, n - 1, 0))
                 p_lo = p_hi + jump
         fluxes.append(np.concatenate([q_lo, q_in, q_hi], axis=a + 1))
         if with_pressure:
-            p_in = _interpolate(_take(h, a, slice(0, n - 1)), pl, _take(h, a, slice(1, n)), pr)
+            pinched = _pinched_ends(domain, a, slice(0, n - 1), slice(1, n))
+            p_in = _interpolate(_take(h, a, slice(0, n - 1)), pl, _take(h, a, slice(1, n)), pr, q_in, pinched)
             pressures.append(np.concatenate([p_lo, p_in, p_hi], axis=a + 1))
     return fluxes, (pressures if with_pressure else None)
 
 
-def _interpolate(h1, p1, h2, p2):
-    """Face pressure where the two half-cell fluxes balance; the mean where both h are 0."""
+def _pinched_ends(domain: LocalDomain, a: int, first, second):
+    """Along z with pinch-out connections, the pinched masks of the cells ``first`` and
+    ``second`` on either side of faces normal to ``a`` (indices or slices); else None."""
+    if a != 2 or not domain.pinch_connections:
+        return None
+    pinched = domain.lengths[2] == 0
+    return _take(pinched, a, first), _take(pinched, a, second)
+
+
+def _interpolate(h1, p1, h2, p2, q=None, pinched=None):
+    """Face pressure where the two half-cell fluxes balance; the mean where both h are 0.
+
+    With ``pinched`` (the masks of the two sides) and the flux ``q`` from side 1 to side 2:
+    on a face between a real cell and a pinched one (a pinch-out connection), the real
+    cell's pressure less the drop over its own half, p1 - q / h1 (or p2 + q / h2): the
+    pressure on the face it would share with the real cell across the run."""
     total = h1 + h2
     out = 0.5 * (p1 + p2)
     np.divide(h1 * p1 + h2 * p2, total, out=out, where=total > 0)
+    if pinched is None:
+        return out
+    first, second = pinched
+    for beside, p, h, sign in ((~first & second, p1, h1, -1.0), (first & ~second, p2, h2, 1.0)):
+        drop = np.divide(q, h, out=np.zeros(np.broadcast(q, h).shape), where=beside & (h > 0))
+        out = np.where(beside, p + sign * drop, out)
     return out
 
 
@@ -849,7 +906,7 @@ def leading_part(domain: LocalDomain, axis: int, stop: int) -> LocalDomain:
         return _take(a, axis, slice(0, stop))
 
     return LocalDomain(k=tuple(cut(k) for k in domain.k), lengths=tuple(cut(length) for length in domain.lengths),
-                       target=domain.target)
+                       target=domain.target, pinch_connections=domain.pinch_connections)
 
 
 def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int
@@ -872,12 +929,14 @@ def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int
     -------
     tuple or None
         (the batch's Solved, the leading part's, its rate at unit drop (nb,) or None);
-        None when the leading part does not come first in the batch's band order.
+        None when the leading part does not come first in the batch's band order, or when
+        it ends on a pinched cell along z with pinch-out connections (there its own
+        connections to its end differ from the batch's across the cut).
     """
     shape = problem.domain.shape
     inside = np.arange(problem.n).reshape(shape)
     inside = _take(inside[None], axis, slice(0, lead.domain.shape[axis]))[0].ravel()
-    if problem.pos[inside].max() != lead.n - 1:
+    if problem.pos[inside].max() != lead.n - 1 or _cuts_a_pinch_out(lead.domain, axis):
         return None
     boundary = sealed_boundary(axis)
     diag, touch, connected, rhs = problem.system(boundary, "sealed", (axis,))
@@ -890,6 +949,13 @@ def solve_with_leading(problem: LocalProblem, lead: LocalProblem, axis: int
     if outflow is None:
         return solved, Solved(lead.shaped(x_lead), lead_touch, lead_connected, residual_lead), None
     return solved, Solved([], lead_touch, lead_connected, residual_lead), x_lead[:, 0]
+
+
+def _cuts_a_pinch_out(domain: LocalDomain, axis: int) -> bool:
+    """Along z with pinch-out connections: does a pinched cell lie on the domains' last layer?"""
+    if axis != 2 or not domain.pinch_connections:
+        return False
+    return bool(np.any(_take(domain.lengths[2], 2, domain.shape[2] - 1) == 0))
 
 
 def _outflow_weights(problem: LocalProblem, axis: int) -> np.ndarray:
@@ -1026,7 +1092,7 @@ def local_domains(fine: GridArrays, partition: Partition, border: int = 0, exten
             lx = np.broadcast_to(batch.gather_line(fine.dx, 0)[:, :, None, None], full)
             ly = np.broadcast_to(batch.gather_line(fine.dy, 1)[:, None, :, None], full)
             yield batch, LocalDomain(k=tuple(batch.gather(a) for a in k), lengths=(lx, ly, batch.gather(dz)),
-                                     target=batch.target)
+                                     target=batch.target, pinch_connections=fine.pinch_connections)
 
 
 def flow_tensors(fine: GridArrays, partition: Partition, bc: str = "sealed", border: int = 0,

@@ -30,6 +30,10 @@ class GridArrays:
     porosity, ntg : ndarray
         Fractions.
     active : ndarray of bool
+    pinch_connections : bool
+        Vertical flow passes across pinched cells (dz = 0) between the real cells of a
+        column (pinch-out connections, :func:`upscale.core.two_point.pinch_out_faces`);
+        False: a pinched cell seals its column.
     """
 
     dx: np.ndarray
@@ -41,6 +45,7 @@ class GridArrays:
     porosity: np.ndarray
     ntg: np.ndarray
     active: np.ndarray
+    pinch_connections: bool = True
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -71,7 +76,7 @@ class GridArrays:
         """
         sx, sy, _ = cells
         three = {n: getattr(self, n)[cells] for n in ("dz", "kx", "ky", "kz", "porosity", "ntg", "active")}
-        return GridArrays(dx=self.dx[sx], dy=self.dy[sy], **three)
+        return GridArrays(dx=self.dx[sx], dy=self.dy[sy], pinch_connections=self.pinch_connections, **three)
 
     def flow_permeability(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Permeability that carries flow.

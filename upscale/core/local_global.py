@@ -45,7 +45,7 @@ from .block_problems import BATCH_BYTES, LocalProblem, local_domains
 from .grid import GridArrays
 from .partition import Partition
 from .pressure import boundary_half, fine_model_check, whole_model_permeability
-from .two_point import cell_geometry, transmissibilities
+from .two_point import cell_geometry, pinch_out_faces, run_ends, transmissibilities
 
 #: a face whose largest coarse pressure difference over the flows is below this (of the
 #: unit drop) has no flow to fit: it keeps its local value
@@ -58,25 +58,59 @@ GLOBAL_SOLVES = ("coarse", "fine")
 class CoarseModel:
     """A coarse two-point grid: cell sizes dx (NX,), dy (NY,), dz (NX, NY, NZ) in m, face
     transmissibilities per axis (N - 1 along it) and half-cell transmissibilities per axis
-    (NX, NY, NZ), both mD*m."""
+    (NX, NY, NZ), both mD*m; with ``pinch_connections``, vertical flow passes across cells
+    of dz = 0 (:meth:`two_point`)."""
 
     dx: np.ndarray
     dy: np.ndarray
     dz: np.ndarray
     faces: list
     halves: list
+    pinch_connections: bool = False
 
     def with_values(self, faces: list, halves: list) -> "CoarseModel":
-        return CoarseModel(self.dx, self.dy, self.dz, faces, halves)
+        return CoarseModel(self.dx, self.dy, self.dz, faces, halves, self.pinch_connections)
+
+    def two_point(self) -> tuple[list, list]:
+        """The faces and halves solved: with pinch-out connections, the z faces beside a
+        cell of dz = 0 and the halves of such cells at a column end are those of
+        :func:`upscale.core.two_point.pinch_out_faces` of the halves (no face problem
+        measures a block without volume); else the model's own."""
+        pinched = self.dz == 0
+        if not self.pinch_connections or not pinched.any() or self.dz.shape[2] < 2:
+            return self.faces, self.halves
+        z_faces, z_half = pinch_out_faces(self.halves[2], pinched)
+        beside = pinched[..., :-1] | pinched[..., 1:]
+        return self.faces[:2] + [np.where(beside, z_faces, self.faces[2])], self.halves[:2] + [z_half]
+
+    def _on_pinch_outs(self, p: np.ndarray, z_faces: np.ndarray) -> np.ndarray:
+        """Pressures with those of the cells of dz = 0 on a pinch-out connection set to the
+        pressure on the face they stand for, between the real cells a above and b below:
+        p_b + q / h_b (p_a - q / h_a at the column's bottom), q the flux down the run (the
+        nodes' own pressures depend on how the run shares its resistance out)."""
+        pinched = self.dz == 0
+        if not self.pinch_connections or not pinched.any() or p.shape[2] < 2:
+            return p
+        above, below = run_ends(pinched)
+        n, h = p.shape[2], self.halves[2]
+        down = np.concatenate([z_faces * (p[..., :-1] - p[..., 1:]), np.zeros_like(p[..., :1])], axis=2)
+        up = np.concatenate([np.zeros_like(p[..., :1]), down[..., :-1]], axis=2)   # the flux into each cell
+        q = np.where(np.arange(n) < n - 1, down, up)
+        side, sign = np.where(below < n, below, above), np.where(below < n, 1.0, -1.0)
+        p_side = np.take_along_axis(p, np.clip(side, 0, n - 1), axis=2)
+        h_side = np.take_along_axis(h, np.clip(side, 0, n - 1), axis=2)
+        face = p_side + sign * np.divide(q, h_side, out=np.zeros_like(q), where=h_side > 0)
+        return np.where(pinched & (side >= 0) & (side < n), face, p)
 
     def axis_flows(self, tolerance: float = 1e-10) -> tuple[list[np.ndarray], np.ndarray]:
         """Pressures (NX, NY, NZ) of the unit-drop flows along x, y, z (0 where a cell
         reaches neither constant-pressure face) and their rates (3,), mD*m."""
         pressures, rates = [], []
+        faces, halves = self.two_point()
         for axis in range(3):
-            result = whole_model_permeability(self.faces, boundary_half(self.halves[axis], axis), self.dx, self.dy,
+            result = whole_model_permeability(faces, boundary_half(halves[axis], axis), self.dx, self.dy,
                                               self.dz, axis, tolerance=tolerance)
-            pressures.append(np.nan_to_num(result["pressure"]))
+            pressures.append(self._on_pinch_outs(np.nan_to_num(result["pressure"]), faces[2]))
             rates.append(result["rate"])
         return pressures, np.array(rates)
 
@@ -126,6 +160,10 @@ class Measured:
         low, high = [], []
         for axis, s in enumerate(solved):
             n = s.shape[axis]
+            if new.low[axis] is None:  # one block along the axis: no model-face fluxes measured
+                low.append(None)
+                high.append(None)
+                continue
             edge_low, edge_high = np.take(s, [0], axis=axis), np.take(s, [n - 1], axis=axis)
             low.append(np.where(edge_low, new.low[axis], self.low[axis]))
             high.append(np.where(edge_high, new.high[axis], self.high[axis]))
@@ -278,7 +316,8 @@ def _still_moving(moved: list[np.ndarray], fluxes: list[np.ndarray], options: Gl
         select = (change > options.moving) | busy
         edge = [slice(None)] * 3
         edge[axis] = [0, -1] if select.shape[axis] > 1 else [0]
-        select[tuple(edge)] = True
+        if select.shape[axis]:  # one block along the axis: no face at all
+            select[tuple(edge)] = True
         out.append(select)
     return out
 
@@ -289,7 +328,8 @@ def fine_face_fluxes(cells: GridArrays, partition: Partition, tolerance: float =
     """The fine fluxes (mD*m) of the fine whole-model unit-drop flows along x, y and z
     through every interior coarse face, and through the model faces of each axis's own
     flow per coarse block, from fine solves."""
-    _, fine_faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)
+    _, fine_faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz,
+                                       cells.pinch_connections)
     solved = [fine_model_check(cells, axis, tolerance=tolerance) for axis in range(3)]
     pressures = [np.nan_to_num(s["pressure"]) for s in solved]
     faces = [np.stack([plane_fluxes(fine_faces[axis], p, partition, axis) for p in pressures]) for axis in range(3)]

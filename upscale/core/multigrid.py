@@ -35,9 +35,15 @@ class VCycle(spla.LinearOperator):
     ----------
     matrix : sparse matrix, (n, n)
         Symmetric positive definite (CSR).
+    near_null : ndarray, (n,), optional
+        The smooth vector the matrix nearly annihilates, from which the aggregates'
+        prolongation is built: ones (None) for a pressure matrix as assembled, whose rows
+        sum to nearly zero; for its scaled form D^-1/2 A D^-1/2 the same vector scaled,
+        D^1/2 1 (:func:`scaled_near_null`). With ones there the scaled system needs about
+        twice the iterations.
     """
 
-    def __init__(self, matrix):
+    def __init__(self, matrix, near_null: np.ndarray | None = None):
         import pyamg  # imported here: only the large models need it
 
         # pyamg estimates spectral radii from random start vectors drawn from numpy's global
@@ -45,16 +51,41 @@ class VCycle(spla.LinearOperator):
         state = np.random.get_state()
         np.random.seed(SETUP_SEED)
         try:
-            hierarchy = pyamg.smoothed_aggregation_solver(sp.csr_matrix(matrix), symmetry="symmetric")
+            candidates = None if near_null is None else np.asarray(near_null, dtype=np.float64).reshape(-1, 1)
+            hierarchy = pyamg.smoothed_aggregation_solver(sp.csr_matrix(matrix), B=candidates, symmetry="symmetric")
         finally:
             np.random.set_state(state)
         levels = hierarchy.levels
-        self.operators = [sp.csr_matrix(level.A).sorted_indices() for level in levels]
-        self.prolongators = [sp.csr_matrix(level.P) for level in levels[:-1]]
-        self.restrictors = [sp.csr_matrix(level.R) for level in levels[:-1]]
+        self._set_levels([level.A for level in levels], [level.P for level in levels[:-1]],
+                         [level.R for level in levels[:-1]])
+
+    @classmethod
+    def from_levels(cls, operators, prolongators, restrictors) -> "VCycle":
+        """The V-cycle of a hierarchy given level by level, without a set-up.
+
+        Parameters
+        ----------
+        operators : list of sparse matrix
+            The operator of each level, finest first.
+        prolongators, restrictors : list of sparse matrix
+            Between each level and the next: P_l, (n_l, n_{l+1}), and R_l = P_l^T.
+
+        Returns
+        -------
+        VCycle
+        """
+        cycle = cls.__new__(cls)
+        cycle._set_levels(operators, prolongators, restrictors)
+        return cycle
+
+    def _set_levels(self, operators, prolongators, restrictors) -> None:
+        """Keep the levels in CSR, invert the coarsest and set up the line smoother."""
+        self.operators = [sp.csr_matrix(A).sorted_indices() for A in operators]
+        self.prolongators = [sp.csr_matrix(P) for P in prolongators]
+        self.restrictors = [sp.csr_matrix(R) for R in restrictors]
         self.coarsest = np.linalg.pinv(self.operators[-1].toarray())
         self.line_smoother = LineSmoother(self.operators[0])
-        super().__init__(dtype=np.float64, shape=self.operators[0].shape)
+        spla.LinearOperator.__init__(self, dtype=np.float64, shape=self.operators[0].shape)
 
     def _matvec(self, b):
         """One V-cycle from x = 0 for ``b``."""
@@ -82,6 +113,64 @@ class VCycle(spla.LinearOperator):
             self.line_smoother.sweep(x, b, forward)
         else:
             _gauss_seidel(A, x, b, forward)
+
+
+class ShiftedCycles:
+    """V-cycles for every matrix of the family K + diag(storage) / dt, one set-up for all.
+
+    The aggregates and prolongators come from one smoothed-aggregation set-up on the first
+    member; each level keeps its Galerkin stiffness K_l = R_l K_{l-1} P_l and storage
+    S_l = R_l S_{l-1} P_l, so a member's levels are exactly K_l + S_l / dt for any step
+    dt, at the cost of a sparse sum per level instead of a new set-up.
+
+    Parameters
+    ----------
+    stiffness : sparse matrix, (n, n)
+        K: symmetric positive semi-definite.
+    storage : ndarray, (n,)
+        The diagonal storage, >= 0, with K + diag(storage) / dt positive definite.
+    dt : float
+        The step of the member the set-up is made on.
+    """
+
+    def __init__(self, stiffness, storage: np.ndarray, dt: float):
+        stiffness = sp.csr_matrix(stiffness)
+        first = VCycle(stiffness + sp.diags(storage / dt))
+        self.prolongators, self.restrictors = first.prolongators, first.restrictors
+        self.stiffness, self.storage = [stiffness], [sp.diags(storage).tocsr()]
+        for P, R in zip(self.prolongators, self.restrictors):
+            self.stiffness.append((R @ self.stiffness[-1] @ P).tocsr())
+            self.storage.append((R @ self.storage[-1] @ P).tocsr())
+
+    def cycle(self, dt: float) -> VCycle:
+        """The V-cycle of K + diag(storage) / dt.
+
+        Parameters
+        ----------
+        dt : float
+            > 0, in the unit of the storage's time.
+
+        Returns
+        -------
+        VCycle
+        """
+        operators = [K + S / dt for K, S in zip(self.stiffness, self.storage)]
+        return VCycle.from_levels(operators, self.prolongators, self.restrictors)
+
+
+def scaled_near_null(scale: np.ndarray) -> np.ndarray:
+    """The near-null vector of a scaled pressure matrix D^-1/2 A D^-1/2: D^1/2 1 = 1 / scale.
+
+    Parameters
+    ----------
+    scale : ndarray, (n,)
+        The scaling factors D^-1/2.
+
+    Returns
+    -------
+    ndarray, (n,)
+    """
+    return 1.0 / np.asarray(scale, dtype=np.float64)
 
 
 class LineSmoother:

@@ -31,7 +31,7 @@ import scipy.sparse.linalg as spla
 from scipy.sparse.csgraph import connected_components
 
 from .grid import AXES, GridArrays, axis_index
-from .multigrid import VCycle
+from .multigrid import VCycle, scaled_near_null
 from .two_point import check_faces, transmissibilities
 
 log = logging.getLogger(__name__)
@@ -353,7 +353,7 @@ def refined_direct(A, lu, scale: np.ndarray, b: np.ndarray, tolerance: float, re
 def _amg_cg(A, scaled, scale, b, tolerance, restarts: int = 6, maxiter: int = 1000):
     """Solve ``A p = b`` by CG on the scaled system with a V-cycle preconditioner, restarted
     until the unscaled relative residual is at most ``tolerance``; returns (p, CG iterations)."""
-    M = VCycle(scaled)
+    M = VCycle(scaled, near_null=scaled_near_null(scale))
     bs = scale * b
     y = np.zeros_like(bs)
     iterations = 0
@@ -489,6 +489,6 @@ def fine_model_check(cells: GridArrays, axis, tolerance: float = 1e-10, direct_l
         'pressure', 'solver', ...).
     """
     axis = axis_index(axis)
-    half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)
+    half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz, cells.pinch_connections)
     return whole_model_permeability(faces, boundary_half(half[axis], axis), cells.dx, cells.dy,
                                     cells.dz, axis, tolerance=tolerance, direct_limit=direct_limit)

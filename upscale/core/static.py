@@ -29,6 +29,7 @@ import numpy as np
 
 from ..errors import InputError
 from .partition import Partition
+from .two_point import pinch_bypassed
 
 STATIC_METHODS = ("arithmetic", "harmonic", "geometric", "power")
 
@@ -133,7 +134,7 @@ def block_length(partition: Partition, dx, dy, dz, axis: int) -> np.ndarray:
     return divide_or_zero(volume, sx[:, None, None] * sy[None, :, None])
 
 
-def cardwell_parsons(k: np.ndarray, dx, dy, dz, partition: Partition, axis: int
+def cardwell_parsons(k: np.ndarray, dx, dy, dz, partition: Partition, axis: int, pinch_connections: bool = True
                      ) -> tuple[np.ndarray, np.ndarray]:
     """Lower and upper Cardwell-Parsons bounds (Cardwell & Parsons 1945) along ``axis``.
 
@@ -142,6 +143,10 @@ def cardwell_parsons(k: np.ndarray, dx, dy, dz, partition: Partition, axis: int
     network of the fine cells (cell conductance k A / l), so they bracket the discrete
     no-flow-sides result; on a regular grid they are the classical arithmetic-of-harmonic
     and harmonic-of-arithmetic. The block permeability of a conductance G is G L^2 / V.
+    With pinch-out connections, along z a pinched cell that a connection passes through
+    within its block (:func:`upscale.core.two_point.pinch_bypassed`) has no resistance: it
+    adds nothing to its column, and joins the two sides of its layer in the upper bound
+    (which is infinite when such cells join every layer of a block).
 
     Parameters
     ----------
@@ -155,6 +160,8 @@ def cardwell_parsons(k: np.ndarray, dx, dy, dz, partition: Partition, axis: int
         The coarse blocks.
     axis : int
         0, 1 or 2.
+    pinch_connections : bool
+        Vertical flow passes across pinched cells (dz = 0) between real cells.
 
     Returns
     -------
@@ -165,9 +172,12 @@ def cardwell_parsons(k: np.ndarray, dx, dy, dz, partition: Partition, axis: int
     length = cell_lengths(dx, dy, dz, axis)
     conductance = np.zeros_like(volume)          # k A / l = k V / l^2 per cell
     np.divide(k * volume, length ** 2, out=conductance, where=length > 0)
+    if axis == 2 and pinch_connections:
+        conductance[pinch_bypassed(conductance, dz == 0, partition.edges[2][:-1])] = np.inf
     lower_g = partition.cross_sum(_conductance(partition.line_sum(_resistance(conductance), axis)), axis)
     slice_resistance = _resistance(partition.cross_sum(conductance, axis))
-    upper_g = _conductance(partition.line_sum(slice_resistance, axis))
+    series = partition.line_sum(slice_resistance, axis)
+    upper_g = np.where(series == 0, np.inf, _conductance(series))   # 0: every layer joined by pinch-outs
     block_volume = partition.block_sum(volume)
     scale = divide_or_zero(block_length(partition, dx, dy, dz, axis) ** 2, block_volume)
     return lower_g * scale, upper_g * scale

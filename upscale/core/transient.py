@@ -54,7 +54,7 @@ from scipy.sparse.csgraph import connected_components
 
 from ..errors import InputError
 from .grid import AXES, GridArrays
-from .multigrid import VCycle
+from .multigrid import ShiftedCycles
 from .pressure import DIRECT_LIMIT, refined_direct, symmetric_lu, unit_diagonal
 from .two_point import check_faces, transmissibilities
 from .units import METRIC_TRANSMISSIBILITY
@@ -215,7 +215,7 @@ class TransientSystem:
         """
         drainage = check_drainage(drainage)
         k = cells.flow_permeability()
-        half, faces = transmissibilities(k, cells.dx, cells.dy, cells.dz)
+        half, faces = transmissibilities(k, cells.dx, cells.dy, cells.dz, cells.pinch_connections)
         faces = [METRIC_TRANSMISSIBILITY * f for f in faces]
         description = {"model": "fine", "drainage": drainage}
         if drainage == "face":
@@ -496,9 +496,11 @@ def projected_guess(A, b: np.ndarray, vectors) -> np.ndarray:
 
 
 class _StepSolver:
-    """Solves (diag(storage / dt) + K) u = rhs, one factorisation (or AMG hierarchy) per
-    distinct dt, the last few kept. The matrix is scaled to unit diagonal first. CG starts
-    from :func:`projected_guess` over the last pressure and the last ``REMEMBER`` solutions."""
+    """Solves (diag(storage / dt) + K) u = rhs for each step dt, the last few steps' solvers
+    kept. Small systems: sparse LU of the matrix scaled to unit diagonal, one per distinct
+    dt. Large ones: CG preconditioned by V-cycles that share one set-up for every dt
+    (:class:`upscale.core.multigrid.ShiftedCycles`), started from :func:`projected_guess`
+    over the last pressure and the last ``REMEMBER`` solutions."""
 
     REMEMBER = 6
 
@@ -509,36 +511,43 @@ class _StepSolver:
         self.tolerance = tolerance
         self.keep = keep
         self.cache: OrderedDict = OrderedDict()
+        self.cycles: ShiftedCycles | None = None
         self.factorisations = 0
         self.iterations = 0
         self.worst_residual = 0.0
         self.history: list[np.ndarray] = []  # the last solutions, newest first
 
     def _prepare(self, dt: float):
-        """The matrix, its scaled form, the scale and the solver of step dt (cached)."""
+        """The matrix of step dt and its solver: (LU, scale) or (V-cycle, None); cached."""
         for known, entry in self.cache.items():
             if abs(known - dt) <= 1e-12 * dt:
                 self.cache.move_to_end(known)
                 return known, entry
         A = (self.K + sp.diags(self.storage / dt)).tocsr()
-        scaled, scale = unit_diagonal(A)
-        solver = symmetric_lu(scaled) if self.direct else VCycle(scaled)
-        entry = (A, scaled, scale, solver)
+        if self.direct:
+            scaled, scale = unit_diagonal(A)
+            entry = (A, symmetric_lu(scaled), scale)
+            self.factorisations += 1
+        else:
+            if self.cycles is None:
+                self.cycles = ShiftedCycles(self.K, self.storage, dt)
+                self.factorisations += 1
+            entry = (A, self.cycles.cycle(dt), None)
         self.cache[dt] = entry
-        self.factorisations += 1
         while len(self.cache) > self.keep:
             self.cache.popitem(last=False)
         return dt, entry
 
     def summary(self) -> dict:
-        """Method, unknowns, factorisations, CG iterations and worst relative residual so far."""
+        """Method, unknowns, factorisations (LU or AMG set-ups), CG iterations and worst
+        relative residual so far."""
         return {"method": "direct" if self.direct else "amg-cg", "unknowns": int(self.storage.size),
                 "factorisations": self.factorisations, "iterations": self.iterations,
                 "worst_relative_residual": self.worst_residual}
 
     def step(self, dt: float, u: np.ndarray) -> tuple[np.ndarray, float]:
         """The pressure after a step dt from u, and the step taken (a cached one within a relative 1e-12)."""
-        dt, (A, scaled, scale, solver) = self._prepare(dt)
+        dt, (A, solver, scale) = self._prepare(dt)
         rhs = self.storage / dt * u
         norm = np.linalg.norm(rhs)
         if norm == 0.0:
@@ -546,21 +555,24 @@ class _StepSolver:
         if self.direct:
             x, _ = refined_direct(A, solver, scale, rhs, self.tolerance, refinements=2)
         else:
-            count = 0
-
-            def counter(_):
-                nonlocal count
-                count += 1
-
-            b = scale * rhs
-            y, _ = spla.cg(scaled, b, x0=projected_guess(scaled, b, [v / scale for v in (u, *self.history)]),
-                           rtol=self.tolerance, atol=0.0, maxiter=1000, M=solver, callback=counter)
-            self.iterations += count
-            x = scale * y
-            self.history = [x, *self.history[:self.REMEMBER - 1]]
+            x = self._iterate(A, solver, rhs, u)
         residual = float(np.linalg.norm(rhs - A @ x) / norm)
         self.worst_residual = max(self.worst_residual, residual)
         return x, dt
+
+    def _iterate(self, A, cycle, rhs, u) -> np.ndarray:
+        """CG on A x = rhs from the projected guess, to the relative residual tolerance."""
+        count = 0
+
+        def counter(_):
+            nonlocal count
+            count += 1
+
+        x, _ = spla.cg(A, rhs, x0=projected_guess(A, rhs, [u, *self.history]), rtol=self.tolerance,
+                       atol=0.0, maxiter=1000, M=cycle, callback=counter)
+        self.iterations += count
+        self.history = [x, *self.history[:self.REMEMBER - 1]]
+        return x
 
 
 def check_fluid(compressibility: float, viscosity: float) -> None:
@@ -586,9 +598,10 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
 
     Systems with at most ``direct_limit`` unknowns are solved by sparse LU (SuperLU in
     symmetric mode, refined up to twice while the relative residual is above ``tolerance``),
-    larger ones by conjugate gradients with a pyamg smoothed aggregation preconditioner (to
-    ``tolerance``, warm-started from the last pressure); either way one factorisation or
-    hierarchy per distinct step, the last four kept. The cumulative-versus-depletion
+    larger ones by conjugate gradients preconditioned by smoothed-aggregation V-cycles (to
+    ``tolerance``, started from a projection on the last pressures): one LU per distinct
+    step, the last four kept, or one AMG set-up for all steps, whose levels take each
+    step's storage term exactly. The cumulative-versus-depletion
     identity holds to about the solves' residual.
 
     Parameters

@@ -151,7 +151,7 @@ def _global_options(solves: str, passes: int | None, ring: int) -> GlobalOptions
 
 
 def global_stage(cells: GridArrays | None, partition: Partition, variables: dict, recipe: Recipe,
-                 progress=None, measure=None, lines=None) -> GlobalReport:
+                 progress=None, measure=None, lines=None, pinch_connections: bool | None = None) -> GlobalReport:
     """Replace the face values ``tx_flow`` ... of :func:`block_variables` (the whole grid)
     by those of the global stage (:mod:`upscale.core.local_global`).
 
@@ -172,6 +172,9 @@ def global_stage(cells: GridArrays | None, partition: Partition, variables: dict
         by default the local problems of ``cells``, or its fine whole-model flows.
     lines : (ndarray, ndarray), optional
         The fine dx (nx,) and dy (ny,), m, when ``cells`` is None.
+    pinch_connections : bool, optional
+        Whether the fine field has pinch-out connections, when ``cells`` is None (the
+        coarse model then has them across its cells of dz = 0); by default that of ``cells``.
 
     Returns
     -------
@@ -183,8 +186,9 @@ def global_stage(cells: GridArrays | None, partition: Partition, variables: dict
     scale = constant * to_length
     local = [variables[f"t{name}_flow"] / scale for name in AXES]
     dx, dy = (cells.dx, cells.dy) if lines is None else lines
+    pinch = cells.pinch_connections if pinch_connections is None else pinch_connections
     model = CoarseModel(np.add.reduceat(dx, partition.edges[0][:-1]), np.add.reduceat(dy, partition.edges[1][:-1]),
-                        variables["dz"], local, [variables[f"half_{name}"] / scale for name in AXES])
+                        variables["dz"], local, [variables[f"half_{name}"] / scale for name in AXES], pinch)
     measure = measure or _in_memory_measure(cells, partition, options)
     model, report = iterate(model, local, _counted(measure, progress), options)
     _store_global_model(variables, model, scale)
@@ -331,7 +335,8 @@ def _bounds_and_halves(core: GridArrays, core_partition: Partition, recipe: Reci
     k_flow = core.flow_permeability()
     out = {}
     for axis, name in enumerate(AXES):
-        lower, upper = cardwell_parsons(k_flow[axis], core.dx, core.dy, core.dz, core_partition, axis)
+        lower, upper = cardwell_parsons(k_flow[axis], core.dx, core.dy, core.dz, core_partition, axis,
+                                        core.pinch_connections)
         out[f"k{name}_lower_bound"], out[f"k{name}_upper_bound"] = lower, upper
         # T scales with length (A / L): mD*m -> mD*ft multiplies by the metres-to-feet factor.
         out[f"half_{name}"] = constant * to_length * half_transmissibility(k[..., axis, axis], volume, lengths[axis])

@@ -9,7 +9,7 @@ import xarray as xr
 
 from ..core.grid import AXES, GridArrays
 from ..core.partition import Partition, partition_from_ranges
-from ..core.two_point import cell_geometry, half_transmissibility
+from ..core.two_point import transmissibilities
 from ..core.units import TRANSMISSIBILITY_UNITS
 from ..errors import InputError
 from .schema import arrays
@@ -164,10 +164,13 @@ def coarse_two_point(coarse: xr.Dataset) -> tuple[GridArrays, list[np.ndarray], 
     halves : list of ndarray
         Per axis the half-cell transmissibilities 2 k V / l^2 of the cells' effective
         permeability (kx*ntg, ky*ntg, kz; 0 in inactive cells); off-diagonal terms unused.
+        With pinch-out connections (the file's ``pinch_connections``), a coarse cell of
+        dz = 0 at the top or bottom of its column holds the value through which a
+        pressure held there reaches the column's first real cell
+        (:func:`upscale.core.two_point.pinch_out_faces`).
     """
     cells = arrays(coarse)
     constant = transmissibility_constant(coarse)
     faces = [t / constant for t in coarse_faces(coarse, cells.shape)]
-    volume, lengths = cell_geometry(cells.dx, cells.dy, cells.dz)
-    k = cells.flow_permeability()
-    return cells, faces, [half_transmissibility(k[a], volume, lengths[a]) for a in range(3)]
+    halves, _ = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz, cells.pinch_connections)
+    return cells, faces, halves

@@ -15,9 +15,10 @@ from ..about import CAUTION, tool_version
 from ..core.face_problems import multipliers as face_multipliers
 from ..core.grid import AXES
 from ..core.partition import Partition
-from ..core.two_point import harmonic_pair
+from ..core.two_point import harmonic_pair, pinch_out_faces
 from ..core.units import unit_system
 from ..core.upscaling import Recipe, method_label, parse_methods
+from .schema import PINCH_CONNECTIONS, PINCH_THICKNESS, PINCH_THICKNESS_UNITS, pinch_connections
 
 log = logging.getLogger(__name__)
 
@@ -54,10 +55,33 @@ def _blockwise(function, *values):
     return function(*values)
 
 
+def _pinch_out_faces(half, dz):
+    """The coarse z faces with pinch-out connections across coarse cells entirely pinched
+    out (dz = 0), on numpy arrays or on dask arrays made whole along z (a run of such
+    cells may cross the boxes)."""
+    def faces(h, d):
+        return pinch_out_faces(h, d == 0)[0]
+
+    if not hasattr(half, "dask"):
+        return faces(half, dz)
+    import dask.array as da
+
+    half = half.rechunk({2: -1})
+    return da.map_blocks(faces, half, dz.rechunk(half.chunks), chunks=half.chunks[:2] + ((half.shape[2] - 1,),),
+                         dtype=float)
+
+
+def _beside_pinched(dz):
+    """The coarse z faces with a coarse cell entirely pinched out on either side."""
+    return (dz[:, :, :-1] == 0) | (dz[:, :, 1:] == 0)
+
+
 def assemble(variables: dict, fine: xr.Dataset, partition: Partition, recipe: Recipe) -> xr.Dataset:
     """The coarse Dataset from :func:`block_variables` (numpy, or dask for a lazy field):
     per-block variables, cell sizes, fine index ranges, face transmissibilities from the
-    written permeability (harmonic pair of the half-cell values) and multipliers."""
+    written permeability (harmonic pair of the half-cell values; with pinch-out
+    connections, :func:`upscale.core.two_point.pinch_out_faces` across coarse cells of
+    dz = 0) and multipliers (1 beside such a cell: no two-block problem has its volume)."""
     cell = AXES
     dx_fine, dy_fine = (np.asarray(fine[n].values, dtype=float) for n in ("dx", "dy"))  # m (normalised)
     data = {
@@ -74,17 +98,21 @@ def assemble(variables: dict, fine: xr.Dataset, partition: Partition, recipe: Re
         data[f"{name}_start"] = ((name,), e[:-1].astype(np.int32), {"long_name": f"first fine {name} index"})
         data[f"{name}_stop"] = ((name,), e[1:].astype(np.int32), {"long_name": f"fine {name} index past the block"})
     unit_name, _, _ = unit_system(recipe.units)
+    pinch = pinch_connections(fine) and variables["dz"].shape[2] > 1
     for axis, name in enumerate(AXES):
         dims = tuple(f"{name}_face" if d == name else d for d in cell)
         half = variables[f"half_{name}"]
         n = half.shape[axis]
         first = half[tuple(slice(0, n - 1) if a == axis else slice(None) for a in range(3))]
         second = half[tuple(slice(1, n) if a == axis else slice(None) for a in range(3))]
-        t = _blockwise(harmonic_pair, first, second)
+        t = _pinch_out_faces(half, variables["dz"]) if pinch and axis == 2 else _blockwise(harmonic_pair, first, second)
         data[f"t{name}"] = (dims, t, {"units": unit_name, "long_name":
                                      f"transmissibility between coarse cells i and i+1 along {name}"})
         if recipe.multipliers:
-            data[f"t{name}_multiplier"] = (dims, _blockwise(face_multipliers, variables[f"t{name}_flow"], t), {
+            multiplier = _blockwise(face_multipliers, variables[f"t{name}_flow"], t)
+            if pinch and axis == 2:
+                multiplier = np.where(_beside_pinched(variables["dz"]), 1.0, multiplier)
+            data[f"t{name}_multiplier"] = (dims, multiplier, {
                 "units": "1", "long_name": f"flow-based transmissibility multiplier on {name} faces",
                 "computed": "flow-based: two-block local solve, relative to the written permeability"})
         else:
@@ -143,6 +171,9 @@ def _provenance(fine: xr.Dataset, partition: Partition, recipe: Recipe) -> dict:
         "edges_z": " ".join(map(str, partition.edges[2])),
         "fine_shape": " ".join(map(str, partition.fine_shape)),
         "transmissibility_units": units,
+        PINCH_CONNECTIONS: "yes" if pinch_connections(fine) else "no",
+        PINCH_THICKNESS: float(fine.attrs.get(PINCH_THICKNESS, 0.0)),
+        PINCH_THICKNESS_UNITS: str(fine.attrs.get(PINCH_THICKNESS_UNITS, "m")),
         "ntg_convention": "kx, ky, kxy are net: multiply by ntg for effective; kz, kxz, kyz are effective",
         "tool": "upscale",
         "tool_version": tool_version(),

@@ -20,6 +20,11 @@ PERMEABILITY = ("kx", "ky", "kz")
 CELL_VALUES = PERMEABILITY + ("porosity", "ntg")
 
 
+#: attributes of a field or coarse grid recording its pinch-out settings (:mod:`upscale.io.pinch_outs`)
+PINCH_CONNECTIONS, PINCH_THICKNESS, PINCH_THICKNESS_UNITS = ("pinch_connections", "pinch_thickness",
+                                                             "pinch_thickness_units")
+
+
 def fine_dataset(kx, ky, kz, porosity, dx, dy, dz, ntg=None, active=None,
                  length_units: str = "m", attrs: dict | None = None) -> xr.Dataset:
     """Build a dataset in the fine-field schema from numpy (or dask) arrays.
@@ -73,6 +78,12 @@ def fine_dataset(kx, ky, kz, porosity, dx, dy, dz, ntg=None, active=None,
     return ds
 
 
+def pinch_connections(ds: xr.Dataset) -> bool:
+    """Whether a field or coarse grid passes vertical flow across pinched cells: its
+    ``pinch_connections`` attribute, 'yes' (the default when absent) or 'no'."""
+    return str(ds.attrs.get(PINCH_CONNECTIONS, "yes")).strip().lower() != "no"
+
+
 def arrays(ds: xr.Dataset) -> GridArrays:
     """The numpy arrays of a normalised field.
 
@@ -85,9 +96,11 @@ def arrays(ds: xr.Dataset) -> GridArrays:
     -------
     GridArrays
         dx (nx,), dy (ny,) in m; dz, kx, ky, kz, porosity, ntg (nx, ny, nz) as floats
-        (m, mD, fractions); active (nx, ny, nz) as booleans.
+        (m, mD, fractions); active (nx, ny, nz) as booleans; the pinch-out connections as
+        recorded (:func:`pinch_connections`).
     """
     return GridArrays(
+        pinch_connections=pinch_connections(ds),
         dx=np.asarray(ds["dx"].values, dtype=float),
         dy=np.asarray(ds["dy"].values, dtype=float),
         dz=np.asarray(ds["dz"].values, dtype=float),

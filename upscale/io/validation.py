@@ -264,8 +264,16 @@ def _normalised(ds: xr.Dataset, sizes: dict[str, xr.DataArray], dz: xr.DataArray
     for name in ds.data_vars:
         if name not in out and name != "k":
             out[name] = ds[name]  # carried along unchanged: coarse-file extras such as tx, x_start
-    out.attrs["length_units_in"] = str(ds["dx"].attrs.get("units", "m"))
+    out.attrs["length_units_in"] = _units_in(ds, "dx", "length_units_in")
+    out.attrs["dz_units_in"] = _units_in(ds, "dz", "dz_units_in")
     return out
+
+
+def _units_in(ds: xr.Dataset, name: str, key: str) -> str:
+    """The units variable ``name`` was read in: its ``units``, or for a field normalised
+    already (in m, with ``key`` recorded) the units recorded then."""
+    units = str(ds[name].attrs.get("units", "m"))
+    return str(ds.attrs[key]) if key in ds.attrs and units == "m" else units
 
 
 def validate(ds: xr.Dataset, where: str = "field") -> xr.Dataset:

@@ -28,12 +28,18 @@ def _table(header: list[str], rows: list[list[str]]) -> list[str]:
     return lines
 
 
-def _pinch_note(between: int) -> str:
-    """The caution printed when pinched cells lie between active cells of a column."""
-    if not between:
-        return ""
-    return (f", {between} of them between active cells of their column: no flow crosses them "
-            f"(no pinch-out connections), so they seal their columns vertically")
+def _pinch_note(pinch: dict) -> str:
+    """What the pinched cells between active cells of a column do: the pinch-out
+    connections made across them, or the caution that they seal their columns."""
+    threshold = f" or thinner than {_number(pinch['thickness'])} {pinch['units']}" if pinch["thickness"] else ""
+    runs, cells = pinch["runs_between_active"], pinch["cells_in_those_runs"]
+    if not runs:
+        return f" (dz = 0{threshold})"
+    if pinch["connections"] == "yes":
+        return (f" (dz = 0{threshold}), {cells} of them between active cells of their column: {runs} pinch-out "
+                f"connection(s) made, vertical flow passes across them")
+    return (f" (dz = 0{threshold}), {cells} of them between active cells of their column: no flow crosses them "
+            f"(pinch-out connections off), so they seal their columns vertically")
 
 
 def format_summary(summary: dict) -> str:
@@ -43,7 +49,7 @@ def format_summary(summary: dict) -> str:
     thickness = sizes["thickness"]
     lines = [
         f"Field {nx} x {ny} x {nz} = {summary['cells']} cells: {summary['active_cells']} active, "
-        f"{summary['pinched_cells']} pinched (dz = 0)" + _pinch_note(summary['pinched_between_active']),
+        f"{summary['pinched_cells']} pinched" + _pinch_note(summary["pinch_outs"]),
         f"Cell sizes (m): dx {_number(sizes['dx']['min'])} .. {_number(sizes['dx']['max'])}, "
         f"dy {_number(sizes['dy']['min'])} .. {_number(sizes['dy']['max'])}, "
         f"dz {_number(sizes['dz']['min'])} .. {_number(sizes['dz']['max'])}",

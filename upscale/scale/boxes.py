@@ -26,6 +26,7 @@ import xarray as xr
 from ..core.grid import AXES
 from ..core.partition import Partition
 from ..errors import InputError
+from ..io.schema import pinch_connections
 from .cluster import active_client
 from .memory import BOX_BYTES_PER_CELL, box_cells, default_memory
 
@@ -130,20 +131,22 @@ def _box_tasks(fine: xr.Dataset, partition: Partition, recipe, boxes, halo, budg
         window, window_partition, blocks = partition.window(tuple(boxes[a][i] for a, i in enumerate(index)), *halo)
         values = {n: v[window].rechunk(-1).to_delayed(optimize_graph=False).ravel()[0] for n, v in cube.items()}
         task = dask.delayed(_box_task, pure=True)(lines["dx"][window[0]], lines["dy"][window[1]],
-                                                  window_partition, blocks, recipe, budget, **values)
+                                                  window_partition, blocks, recipe, budget, pinch_connections(fine),
+                                                  **values)
         tasks[index] = dask.delayed(_run_graph, pure=True)(_pack(task))
     return tasks
 
 
-def _box_task(dx, dy, window_partition, blocks, recipe, budget: int, **values) -> dict:
-    """The task of one box: its window's cells as GridArrays (and the recipe's other fine
-    variables), then the recipe's per-block variables (:meth:`Recipe.compute`)."""
+def _box_task(dx, dy, window_partition, blocks, recipe, budget: int, pinch: bool, **values) -> dict:
+    """The task of one box: its window's cells as GridArrays (``pinch``: with pinch-out
+    connections; and the recipe's other fine variables), then the recipe's per-block
+    variables (:meth:`Recipe.compute`)."""
     from ..core.grid import GridArrays
 
     values = {n: np.asarray(v, dtype=v.dtype) for n, v in values.items()}
     values["active"] = values["active"].astype(bool)
     extra = {n: values.pop(n) for n in recipe.fine_variables}
-    cells = GridArrays(dx=dx, dy=dy, **values)
+    cells = GridArrays(dx=dx, dy=dy, pinch_connections=pinch, **values)
     return recipe.compute(cells, window_partition, blocks, budget, extra=extra)
 
 

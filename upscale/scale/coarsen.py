@@ -9,6 +9,7 @@ from ..core.partition import make_partition
 from ..core.upscaling import block_variables, global_stage, make_recipe
 from ..errors import InputError
 from ..io.coarse_grid import assemble, warn_flagged
+from ..io.pinch_outs import with_pinch_outs
 from ..io.schema import arrays
 from ..io.validation import validate
 from .boxes import lazy_block_variables
@@ -19,7 +20,8 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
             bc: str = "sealed", border: int = 0, omega: float | None = None,
             multipliers: bool = False, units: str = "metric", progress=None,
             memory: int | None = None, box: tuple[int, int, int] | None = None,
-            global_solves: str = "coarse", passes: int | None = None) -> xr.Dataset:
+            global_solves: str = "coarse", passes: int | None = None, pinch_connections: bool = True,
+            pinch_thickness: float = 0.0) -> xr.Dataset:
     """``upscale.coarsen``: the coarse grid of a fine field.
 
     Parameters
@@ -58,6 +60,15 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
         model's whole-model flows (needs the fine model solved three times).
     passes : int, optional
         For ``bc="global"``: the most passes (default 3 for coarse, 10 for fine).
+    pinch_connections : bool
+        Vertical flow passes across pinched cells (dz = 0) between the real cells of a
+        column, as if they were neighbours (pinch-out connections), fine and coarse (a
+        coarse cell entirely pinched out is crossed the same way); False: a pinched cell
+        seals its column.
+    pinch_thickness : float
+        Cells thinner than this, in the field's thickness units (those of its dz, m or
+        ft), count as pinched out too: their volume is left out and they carry no flow of
+        their own. 0: only cells with dz = 0.
 
     Returns
     -------
@@ -66,6 +77,7 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
         transmissibilities, multipliers, fine-index ranges and provenance).
     """
     recipe = make_recipe(method, bc, border, omega, multipliers, units, global_solves, passes)
+    pinch = dict(connections=pinch_connections, thickness=pinch_thickness)
     if is_lazy(fine):
         if recipe.global_options is not None and recipe.global_options.solves == "fine":
             raise InputError("global solves 'fine' need the fine model in memory (three whole-model solves); "
@@ -73,6 +85,7 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
                              "'coarse' (local-global), which runs in boxes")
         if "length_units_in" not in fine.attrs:  # not from open_field / validate: check it (one pass)
             fine = validate(fine)
+        fine = with_pinch_outs(fine, **pinch)
         partition = make_partition(tuple(fine.sizes[d] for d in AXES), ratio=ratio, edges=edges)
         if recipe.global_options is not None:
             variables, report = global_in_boxes(fine, partition, recipe, memory, box)
@@ -81,7 +94,7 @@ def coarsen(fine: xr.Dataset, ratio=None, edges: dict | None = None, method="flo
             return coarse
         variables = lazy_block_variables(fine, partition, recipe, memory, box)
         return assemble(variables, fine, partition, recipe)
-    fine = validate(fine)
+    fine = with_pinch_outs(validate(fine), **pinch)
     cells = arrays(fine)
     partition = make_partition(cells.shape, ratio=ratio, edges=edges)
     everything = tuple(slice(0, n) for n in partition.shape)

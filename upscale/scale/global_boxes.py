@@ -17,6 +17,7 @@ from ..core.grid import GridArrays
 from ..core.local_global import FaceRegions, Frame
 from ..core.partition import Partition
 from ..core.upscaling import Recipe, global_stage
+from ..io.schema import pinch_connections
 from .boxes import _pack, _run_graph, lazy_block_variables, plan_boxes
 from .memory import box_cells, default_memory
 
@@ -53,7 +54,8 @@ def global_in_boxes(fine: xr.Dataset, partition: Partition, recipe: Recipe, memo
     variables = dict(zip(lazy, dask.compute(*lazy.values())))
     measure = BoxMeasure(fine, partition, recipe.global_options.ring, default_memory() if memory is None else memory)
     lines = tuple(np.asarray(fine[n].values, dtype=float) for n in ("dx", "dy"))
-    return variables, global_stage(None, partition, variables, recipe, measure=measure, lines=lines)
+    return variables, global_stage(None, partition, variables, recipe, measure=measure, lines=lines,
+                                   pinch_connections=pinch_connections(fine))
 
 
 class BoxMeasure:
@@ -89,11 +91,14 @@ class BoxMeasure:
                       tuple(np.arange(b.start - w.start, b.stop - w.start) for b, w in zip(blocks, window)))
         dx, dy = (np.asarray(self.fine[n].values[c], dtype=float) for n, c in (("dx", cells[0]), ("dy", cells[1])))
         return dask.delayed(_box_measure, pure=True)(dx, dy, self.partition.crop(tuple(window)), frame, self.ring,
-                                                     self.budget, pressures, solved, **values)
+                                                     self.budget, pressures, solved, pinch_connections(self.fine),
+                                                     **values)
 
 
-def _box_measure(dx, dy, window_partition, frame, ring, budget, pressures, solved, **values):
-    """One box: the face regions after its owned blocks, measured under the coarse pressures."""
+def _box_measure(dx, dy, window_partition, frame, ring, budget, pressures, solved, pinch: bool, **values):
+    """One box: the face regions after its owned blocks, measured under the coarse pressures
+    (``pinch``: with pinch-out connections)."""
     values["active"] = np.asarray(values["active"]).astype(bool)
-    cells = GridArrays(dx=dx, dy=dy, **{n: np.asarray(v, dtype=v.dtype) for n, v in values.items()})
+    cells = GridArrays(dx=dx, dy=dy, pinch_connections=pinch,
+                       **{n: np.asarray(v, dtype=v.dtype) for n, v in values.items()})
     return FaceRegions(cells, window_partition, ring, budget, frame).measure(pressures, solved)
