@@ -339,7 +339,7 @@ def _time_against_pyamg(cells, tolerance: float = 1e-10) -> dict:
     from ..core.pressure import assemble_pressure_system, boundary_half, solve_pressure
     from ..core.two_point import transmissibilities
 
-    half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz)
+    half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz, cells.pinch_connections)
     ours = theirs = 0.0
     worst = 0.0
     for axis in range(3):

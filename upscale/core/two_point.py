@@ -149,24 +149,37 @@ def transmissibilities(k: tuple[np.ndarray, np.ndarray, np.ndarray], dx, dy, dz,
     return half, faces + [z_faces]
 
 
-def run_ends(pinched: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def run_ends(pinched: np.ndarray, first=0, stop=None) -> tuple[np.ndarray, np.ndarray]:
     """The real cells around runs of pinched cells, in columns along the last axis.
 
     Parameters
     ----------
     pinched : ndarray of bool, (..., nz)
+    first, stop : int or ndarray of int, (nz,)
+        Per index, the first index of its segment and the one past its last: runs stop at
+        segment ends (e.g. coarse blocks, each a column of its own). Default: one segment,
+        0 to nz.
 
     Returns
     -------
     above, below : ndarray of int, (..., nz)
-        Per cell, the index of the nearest real (not pinched) cell at or above it (-1:
-        none, the column's top end) and at or below it (nz: none).
+        Per cell, the index of the nearest real (not pinched) cell at or above it in its
+        segment (first - 1: none, the segment's top end) and at or below it (stop: none).
     """
     n = pinched.shape[-1]
     index = np.arange(n)
-    above = np.maximum.accumulate(np.where(pinched, -1, index), axis=-1)
-    below = np.flip(np.minimum.accumulate(np.flip(np.where(pinched, n, index), axis=-1), axis=-1), axis=-1)
+    stop = n if stop is None else stop
+    above = np.maximum.accumulate(np.where(pinched, np.asarray(first) - 1, index), axis=-1)
+    below = np.flip(np.minimum.accumulate(np.flip(np.where(pinched, stop, index), axis=-1), axis=-1), axis=-1)
     return above, below
+
+
+def _halves_at(half: np.ndarray, above: np.ndarray, below: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The half values at the indices ``above`` and ``below`` along the last axis, indices
+    past the column's ends clipped to them."""
+    n = half.shape[-1]
+    return (np.take_along_axis(half, np.clip(above, 0, n - 1), axis=-1),
+            np.take_along_axis(half, np.clip(below, 0, n - 1), axis=-1))
 
 
 def _joined(half: np.ndarray, above: np.ndarray, below: np.ndarray) -> np.ndarray:
@@ -174,8 +187,7 @@ def _joined(half: np.ndarray, above: np.ndarray, below: np.ndarray) -> np.ndarra
     last axis; an index past the column's end (-1 or n) stands for a pressure held on that
     end, which adds no resistance (the other half alone); 0 when both are past the ends."""
     n = half.shape[-1]
-    h_above = np.take_along_axis(half, np.clip(above, 0, n - 1), axis=-1)
-    h_below = np.take_along_axis(half, np.clip(below, 0, n - 1), axis=-1)
+    h_above, h_below = _halves_at(half, above, below)
     pair = np.where(above < 0, h_below, np.where(below >= n, h_above, harmonic_pair(h_above, h_below)))
     return np.where((above < 0) & (below >= n), 0.0, pair)
 
@@ -268,14 +280,11 @@ def pinch_bypassed(half: np.ndarray, pinched: np.ndarray, starts: np.ndarray) ->
         end at each side, and a real cell at one side at least.
     """
     n = pinched.shape[-1]
-    index = np.arange(n)
-    segment = np.searchsorted(starts, index, side="right") - 1
+    segment = np.searchsorted(starts, np.arange(n), side="right") - 1
     first, stop = np.asarray(starts)[segment], np.append(starts, n)[segment + 1]
-    above = np.maximum.accumulate(np.where(pinched, first - 1, index), axis=-1)   # < first: the segment's top
-    below = np.flip(np.minimum.accumulate(np.flip(np.where(pinched, stop, index), axis=-1), axis=-1), axis=-1)
+    above, below = run_ends(pinched, first, stop)
     top, bottom = above < first, below >= stop
-    h_above = np.take_along_axis(half, np.clip(above, 0, n - 1), axis=-1)
-    h_below = np.take_along_axis(half, np.clip(below, 0, n - 1), axis=-1)
+    h_above, h_below = _halves_at(half, above, below)
     return pinched & (top | (h_above > 0)) & (bottom | (h_below > 0)) & ~(top & bottom)
 
 
