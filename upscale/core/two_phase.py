@@ -604,7 +604,8 @@ def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high
     lx, ly, lz = domain.lengths  # lx, ly are lines broadcast along the other axes: copied as lines
     lengths = (np.broadcast_to(lx[:, :, :1, :1][block], shape), np.broadcast_to(ly[:, :1, :, :1][block], shape),
                lz[block])
-    phases = LocalDomain(k=tuple(permeability), lengths=lengths, target=domain.target)
+    phases = LocalDomain(k=tuple(permeability), lengths=lengths, target=domain.target,
+                         pinch_connections=domain.pinch_connections)
     diagonal = np.zeros((nb * copies, 3))
     residual = np.zeros(nb * copies)
     single = (np.zeros((nb, 3, 3)), np.zeros(nb), np.zeros(nb))

@@ -16,6 +16,7 @@ from ..core.upscaling import block_variable_names, make_recipe
 from ..errors import InputError
 from ..io.coarse_grid import assemble
 from ..io.curve_file import curve_dataset
+from ..io.pinch_outs import with_pinch_outs
 from ..io.rock_table import RockTable, code_variable, facies_rocks, read_rock_table
 from ..io.schema import arrays
 from ..io.validation import validate
@@ -73,6 +74,7 @@ def two_phase(fine: xr.Dataset, rocks: str | os.PathLike | RockTable, ratio=None
     lazy = is_lazy(fine)
     if not lazy or "length_units_in" not in fine.attrs:
         fine = validate(fine)
+    fine = with_pinch_outs(fine)  # the defaults of coarsen: connections across pinched cells, recorded
     codes, rock_of_code = facies_rocks(fine, table)
     if regions is not None:
         code_variable(fine, regions)
