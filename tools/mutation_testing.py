@@ -257,7 +257,8 @@ def main(argv=None) -> int:
     parser.add_argument("--sample", type=int, metavar="N",
                         help="with --rerun: of the mutants the kept run never reached, test a seeded random N only")
     parser.add_argument("--rerun", type=Path, metavar="FOLDER",
-                        help="a folder kept by an earlier run of one module: test its survivors again with today's tests")
+                        help="a folder kept by an earlier run of one module: test its survivors again with "
+                             "today's tests")
     args = parser.parse_args(argv)
     unknown = [m for m in args.modules if m not in MODULES]
     if unknown:
