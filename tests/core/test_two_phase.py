@@ -15,6 +15,8 @@ Every reference value is computed here from those formulas, not by the module un
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
 from helpers import make_cells
@@ -170,6 +172,36 @@ def test_a_layer_of_zero_permeability_keeps_its_water():
     assert out["swc"][0, 0, 0] == pytest.approx(np.sum(pore * low) / np.sum(pore), rel=1e-13)
     assert out["sor"][0, 0, 0] == pytest.approx(1 - np.sum(pore * high) / np.sum(pore), rel=1e-13)
     assert np.all(out["krw_z"][0, 0, 0] == 0) and np.all(out["kro_z"][0, 0, 0] == 0)  # sealed across
+
+
+@pytest.mark.parametrize("limit", ["capillary", "viscous"])
+def test_blocks_that_carry_no_flow_beside_one_that_does(limit):
+    # Three 2 x 2 x 2 blocks along x: homogeneous sand, a block of zero permeability with pore
+    # volume (oil never enters it: Pe infinite, Leverett 1941), and an inactive block. The
+    # first gives its rock curves (Corey 1954) whatever its neighbours; the second flows no
+    # phase; the third has no curves at all. No numpy warning may escape (warnings are errors
+    # here: before the fix an infinite factor bound times a zero rate warned on every run
+    # holding such a block).
+    k = np.zeros((6, 2, 2))
+    k[:2] = 80.0
+    active = np.ones((6, 2, 2), np.int8)
+    active[4:] = 0
+    cells = make_cells(k, dx=np.full(6, 10.0), dy=np.full(2, 5.0), dz=np.full(2, 2.0), porosity=0.21, active=active)
+    rock_type = SILT if limit == "viscous" else SAND  # equal exponents: the closed form of fw = F
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        out = run(cells, np.zeros((6, 2, 2), int), (2, 2, 2), curves_of(rock_type), limit, points=5)
+    fraction = np.linspace(0, 1, 5)
+    span = 1 - rock_type["swc"] - rock_type["sor"]
+    sw = (rock_type["swc"] + span * fraction if limit == "capillary" else
+          np.concatenate([[rock_type["swc"]], sw_at_flow(fraction[1:-1], rock_type), [1 - rock_type["sor"]]]))
+    for axis in "xyz":  # round-off of the solves and the powers, as for a homogeneous block
+        np.testing.assert_allclose(out[f"krw_{axis}"][0, 0, 0], krw(sw, rock_type), rtol=1e-11, atol=1e-15)
+        np.testing.assert_allclose(out[f"kro_{axis}"][0, 0, 0], kro(sw, rock_type), rtol=1e-11, atol=1e-15)
+        assert np.all(out[f"krw_{axis}"][1, 0, 0] == 0) and np.all(out[f"kro_{axis}"][1, 0, 0] == 0)
+    if limit == "capillary":  # the tight block keeps its water at every capillary pressure
+        np.testing.assert_allclose(out["sw"][1, 0, 0], 1 - rock_type["sor"], rtol=1e-15)
+    assert np.isnan(out["sw"][2, 0, 0]).all() and np.isnan(out["swc"][2, 0, 0])
 
 
 def test_layers_in_the_viscous_limit_share_one_fractional_flow():

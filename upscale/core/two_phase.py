@@ -570,7 +570,7 @@ def _scaled_copies(factor, kept, copies, k, out):  # pragma: no cover - compiled
 
 
 def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high: np.ndarray, bc: str
-                  ) -> tuple[np.ndarray, np.ndarray]:
+                  ) -> tuple[np.ndarray, np.ndarray, tuple[np.ndarray, np.ndarray, np.ndarray]]:
     """The batch's domains solved for every copy of :func:`_batch_factors` (permeability
     times the factor), as one batch of domains. A copy whose factor is the same in every
     cell that carries flow (one rock type at one saturation, or none flowing) scales the
@@ -618,7 +618,8 @@ def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high
     diagonal = diagonal.reshape(nb, copies, 3)
     scaled = uniform & flowing
     scaled[:, 0] = False
-    diagonal[scaled] = (high[..., None] * diagonal[:, :1])[scaled]
+    domain_index, copy = np.nonzero(scaled)  # only these: a domain without flow has factor bounds of -inf
+    diagonal[domain_index, copy] = high[domain_index, copy, None] * diagonal[domain_index, 0]
     return diagonal, residual.reshape(nb, copies).max(axis=1), single
 
 
