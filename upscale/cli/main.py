@@ -457,7 +457,9 @@ def _make_field(args) -> int:
     elif args.kind == "channels":
         ds = synthetic.channel_field(tuple(args.shape or (80, 60, 20)), args.channels, 4, args.seed)
     else:
-        ds = synthetic.demo_field(seed=args.seed or 7)
+        from ..gallery.demo_field import demo_field
+
+        ds = demo_field(seed=args.seed or 7)
     write(ds, out)
     print(f"wrote {out}")
     return 0
