@@ -319,6 +319,8 @@ CASES = [
          ("facies code 1 (shale) has no rock type", "first at (x=0, y=0, z=1)", "add [rock.shale]"), TWO_PHASE),
     Case("rock-names-no-facies", two_phase_field(ROCKS.replace("[rock.shale]", "[rock.shales]")),
          ("[rock.shales] names no facies", "sand (0), shale (1)"), TWO_PHASE),
+    Case("rocks-two-for-one-code", two_phase_field(ROCKS + '\n[rock."1"]' + ROCKS.split("[rock.shale]")[1]),
+         ("[rock.1] and [rock.shale] both give facies code 1", "keep one"), TWO_PHASE),
     Case("field-without-facies", two_phase_field(change=lambda ds: ds.__delitem__("facies")),
          ("no variable 'facies'",), TWO_PHASE),
     Case("facies-not-integer", two_phase_field(change=facies_fraction),

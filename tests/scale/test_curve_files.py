@@ -12,6 +12,7 @@ import hashlib
 import re
 import subprocess
 import sys
+import tomllib
 
 import numpy as np
 import pytest
@@ -20,7 +21,6 @@ from helpers import ROCKS
 
 import upscale
 from upscale.io.schema import fine_dataset
-
 
 
 def field(shape=(8, 6, 6), seed=2) -> xr.Dataset:
@@ -62,6 +62,37 @@ def test_boxes_give_the_in_memory_answer(files, options, box):
     boxed = upscale.two_phase(lazy, files / "rocks.toml", ratio=(2, 2, 3), points=6, box=box, **options)
     assert_same(memory, boxed)
     assert np.isfinite(memory["krw_x"].values[memory["active"].values == 1]).all()
+
+
+def test_rock_types_by_flag_meaning_and_by_quoted_code_reach_their_cells(tmp_path):
+    # Two homogeneous blocks: facies 3, named 'sand' by its flag meaning (second in the
+    # flag lists), and facies 7, a rock type given by its code as [rock."7"]. Each block must
+    # give back the curves of its own rock (Corey 1954: kr = kr_max Sn^n; Brooks & Corey
+    # 1964 with Leverett 1941: Pc = sigma J_entry sqrt(phi / k) Sn^(-1/lambda), k in m2,
+    # 1 D = 9.869233e-13 m2, API RP 27, from memory), written out here from the table itself.
+    table = tomllib.loads(ROCKS)
+    sigma = table["fluids"]["interfacial_tension"]
+    k = np.empty((4, 2, 2))
+    k[:2], k[2:] = 150.0, 12.0
+    ds = fine_dataset(k, k, 0.1 * k, np.full(k.shape, 0.2), np.full(4, 10.0), np.full(2, 10.0), np.full(2, 1.0))
+    codes = np.full(k.shape, 3, np.int8)
+    codes[2:] = 7
+    ds["facies"] = (("x", "y", "z"), codes, {"flag_values": np.array([7, 3], np.int8), "flag_meanings": "mud sand"})
+    (tmp_path / "rocks.toml").write_text(ROCKS)
+    curves = upscale.two_phase(ds, tmp_path / "rocks.toml", ratio=(2, 2, 2), points=6)
+    sn = np.linspace(0, 1, 6)
+    for block, name, block_k in (((0, 0, 0), "sand", 150.0), ((1, 0, 0), "7", 12.0)):
+        r = table["rock"][name]
+        sw = r["swc"] + (1 - r["swc"] - r["sor"]) * sn
+        np.testing.assert_allclose(curves["sw"].values[block], sw, rtol=1e-12)  # sums of pore volumes
+        entry = sigma * r["j_entry"] * np.sqrt(0.2 / (block_k * 9.869233e-16)) / 1e5
+        np.testing.assert_allclose(curves["pc"].values[block][1:], entry * sn[1:] ** (-1 / r["pore_size_index"]),
+                                   rtol=1e-11)  # the powers and the root search, to round-off
+        for axis in "xyz":  # the solves' relative residual of 1e-12
+            np.testing.assert_allclose(curves[f"krw_{axis}"].values[block], r["krw_max"] * sn ** r["nw"],
+                                       rtol=1e-11, atol=1e-15)
+            np.testing.assert_allclose(curves[f"kro_{axis}"].values[block], r["kro_max"] * (1 - sn) ** r["no"],
+                                       rtol=1e-11, atol=1e-15)
 
 
 def test_cli_writes_a_curve_file_readable_as_a_field(files, tmp_path):
