@@ -75,19 +75,22 @@ def test_brooks_corey_inversion_returns_the_saturation(swc, sor, lam, entry, sn)
 
 
 @pytest.mark.parametrize("n", [1.0, 2.0, 3.5])
-def test_saturation_at_fractional_flow_against_the_closed_form(n):
+def test_normalised_saturation_at_fractional_flow_against_the_closed_form(n):
     # With equal Corey exponents n, fw = F gives (kro_max / krw_max) ((1 - Sn) / Sn)^n
     # = (mu_o / mu_w) (1 - F) / F, so Sn = 1 / (1 + ((mu_o / mu_w) (1 - F) / F krw_max / kro_max)^(1/n))
     # (algebra on Corey 1954). The bisection stops at 2^-64 of the unit interval: 1e-12.
-    r = rock(nw=n, no=n, krw_max=0.3, kro_max=0.9)
+    r = rock(swc=0.25, sor=0.3124492610940099, nw=n, no=n, krw_max=0.3, kro_max=0.9)
     fluids = Fluids(water_viscosity=0.5, oil_viscosity=2.0, interfacial_tension=0.03)
     flow = np.array([0.0, 0.01, 0.2, 0.5, 0.9, 0.999, 1.0])
     inside = flow[1:-1]
     sn = 1.0 / (1.0 + ((2.0 / 0.5) * (1 - inside) / inside * 0.3 / 0.9) ** (1.0 / n))
-    got = r.saturation_at_fractional_flow(flow, fluids)[0]
-    np.testing.assert_allclose(got[1:-1], 0.2 + 0.6 * sn, rtol=0, atol=1e-12)
-    assert got[0] == 0.2 and got[-1] == 0.8
-    np.testing.assert_allclose(fractional_flow(r, got, fluids), flow, atol=1e-12)
+    got = r.normalised_at_fractional_flow(flow, fluids)[0]
+    np.testing.assert_allclose(got[1:-1], sn, rtol=0, atol=1e-12)
+    # the ends exactly, so that kro (krw) is exactly 0 there: with these swc, sor the Sw of
+    # Sn = 1 normalised again is 1 - 1.1e-16, where kro would be 1e-32 instead of 0
+    assert got[0] == 0.0 and got[-1] == 1.0
+    assert r.oil_at_normalised(got[-1:], ZERO)[0] == 0.0 and r.water_at_normalised(got[:1], ZERO)[0] == 0.0
+    np.testing.assert_allclose(fractional_flow(r, r.saturation(got, ZERO), fluids), flow, atol=1e-12)
 
 
 @settings(max_examples=50, deadline=None)

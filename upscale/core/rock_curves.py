@@ -104,11 +104,19 @@ class RockCurves:
 
     def water(self, sw: np.ndarray, rock: np.ndarray) -> np.ndarray:
         """Water relative permeability krw at Sw."""
-        return self.krw_max[rock] * self.normalised(sw, rock) ** self.nw[rock]
+        return self.water_at_normalised(self.normalised(sw, rock), rock)
 
     def oil(self, sw: np.ndarray, rock: np.ndarray) -> np.ndarray:
         """Oil relative permeability kro at Sw."""
-        return self.kro_max[rock] * (1.0 - self.normalised(sw, rock)) ** self.no[rock]
+        return self.oil_at_normalised(self.normalised(sw, rock), rock)
+
+    def water_at_normalised(self, normalised: np.ndarray, rock: np.ndarray) -> np.ndarray:
+        """Water relative permeability krw at the normalised saturation Sn (0..1)."""
+        return self.krw_max[rock] * normalised ** self.nw[rock]
+
+    def oil_at_normalised(self, normalised: np.ndarray, rock: np.ndarray) -> np.ndarray:
+        """Oil relative permeability kro at the normalised saturation Sn (0..1)."""
+        return self.kro_max[rock] * (1.0 - normalised) ** self.no[rock]
 
     def leverett_j(self, sw: np.ndarray, rock: np.ndarray) -> np.ndarray:
         """Leverett J at Sw (infinite at Sn = 0)."""
@@ -116,8 +124,8 @@ class RockCurves:
         with np.errstate(divide="ignore"):
             return self.j_entry[rock] * sn ** (-1.0 / self.pore_size_index[rock])
 
-    def saturation_at_fractional_flow(self, flow: np.ndarray, fluids: Fluids) -> np.ndarray:
-        """Water saturation of every rock type at which fw equals each given value.
+    def normalised_at_fractional_flow(self, flow: np.ndarray, fluids: Fluids) -> np.ndarray:
+        """Normalised saturation Sn of every rock type at which fw equals each given value.
 
         Solves ln kro - ln krw = ln(mu_o / mu_w) + ln((1 - F) / F), strictly decreasing in
         Sn, by bisection on all rock types and values at once (64 halvings: to round-off).
@@ -130,7 +138,8 @@ class RockCurves:
         Returns
         -------
         ndarray, (R, P)
-            Sw: swc at F = 0, 1 - sor at F = 1.
+            Sn: exactly 0 at F = 0 and 1 at F = 1 (where krw, kro vanish exactly; Sw turned
+            back into Sn would miss them by round-off).
         """
         flow = np.asarray(flow, dtype=float)[None, :]
         rock = np.arange(len(self.names))[:, None]
@@ -144,8 +153,7 @@ class RockCurves:
                      - np.log(self.krw_max[rock]) - self.nw[rock] * np.log(middle))
             above = ratio > odds  # still too much oil: more water
             low, high = np.where(above, middle, low), np.where(above, high, middle)
-        sn = np.where(flow <= 0, 0.0, np.where(flow >= 1, 1.0, 0.5 * (low + high)))
-        return self.saturation(sn, rock)
+        return np.where(flow <= 0, 0.0, np.where(flow >= 1, 1.0, 0.5 * (low + high)))
 
 
 def leverett_scale(porosity: np.ndarray, permeability: np.ndarray, interfacial_tension: float) -> np.ndarray:

@@ -228,14 +228,14 @@ class States:
         The block's water saturation and capillary pressure (bar) at each point.
     ends : ndarray, (bx, by, bz, 2)
         The block's swc and sor (NaN for blocks without pore volume).
-    cell_sw : ndarray or None, (R, P)
-        Viscous limit: the Sw of every rock type at each point.
+    cell_sn : ndarray or None, (R, P)
+        Viscous limit: the normalised Sw of every rock type at each point.
     """
 
     sw: np.ndarray
     pc: np.ndarray
     ends: np.ndarray
-    cell_sw: np.ndarray | None
+    cell_sn: np.ndarray | None
 
 
 def saturation_states(cells: GridArrays, rocks: CellRocks, partition: Partition, blocks, recipe: TwoPhaseRecipe
@@ -284,7 +284,7 @@ def capillary_states(cells: GridArrays, rocks: CellRocks, partition: Partition, 
                                  np.asarray(fraction, dtype=float), *result)
         for coarse, values in zip((pc, sw, ends), result):
             group.scatter(coarse, values)
-    return States(sw=sw, pc=pc, ends=ends, cell_sw=None)
+    return States(sw=sw, pc=pc, ends=ends, cell_sn=None)
 
 
 @njit(cache=True)
@@ -404,10 +404,12 @@ def viscous_states(cells: GridArrays, rocks: CellRocks, partition: Partition, cu
     Returns
     -------
     States
-        With ``cell_sw`` (R, P).
+        With ``cell_sn`` (R, P).
     """
-    cell_sw = curves.saturation_at_fractional_flow(fraction, fluids)
-    rock_j = curves.leverett_j(cell_sw, np.arange(len(curves.names))[:, None])
+    kinds = np.arange(len(curves.names))[:, None]
+    cell_sn = curves.normalised_at_fractional_flow(fraction, fluids)
+    cell_sw = curves.saturation(cell_sn, kinds)
+    rock_j = curves.leverett_j(cell_sw, kinds)
     pore = cells.pore_volume
     entered = np.isfinite(rocks.scale)
     total = partition.block_sum(pore)
@@ -427,7 +429,7 @@ def viscous_states(cells: GridArrays, rocks: CellRocks, partition: Partition, cu
         pc = np.where(flowing > 0, scaled / np.where(flowing > 0, flowing, 1.0), np.nan)
     empty = total[..., None] <= 0
     return States(sw=np.where(empty, np.nan, divide_or_zero(sw, total[..., None])), pc=pc,
-                  ends=np.where(empty, np.nan, divide_or_zero(sums, total[..., None])), cell_sw=cell_sw)
+                  ends=np.where(empty, np.nan, divide_or_zero(sums, total[..., None])), cell_sn=cell_sn)
 
 
 def phase_permeability_ratios(cells: GridArrays, rocks: CellRocks, partition: Partition, blocks,
@@ -486,7 +488,7 @@ def _window_states(partition: Partition, blocks, states: States, recipe: TwoPhas
     capillary pressure over the window's blocks (those of the box filled), (NX, NY, NZ, P);
     in the viscous limit the normalised Sw of every rock type, (R, P)."""
     if recipe.limit == "viscous":
-        return recipe.curves.normalised(states.cell_sw, np.arange(len(recipe.curves.names))[:, None])
+        return states.cell_sn
     window = np.zeros(partition.shape + (recipe.points,))
     window[blocks] = states.pc
     return window
@@ -509,7 +511,7 @@ def _batch_factors(batch, domain: LocalDomain, rocks: CellRocks, state: np.ndarr
         water = oil = np.zeros((1, points))
     else:  # every cell of a rock type at one saturation per point: its kr looked up
         kinds = np.arange(len(curves.names))[:, None]
-        water, oil = (f(curves.saturation(state, kinds), kinds) for f in (curves.water, curves.oil))
+        water, oil = (f(state, kinds) for f in (curves.water_at_normalised, curves.oil_at_normalised))
     with first_call(_phase_factors):
         _phase_factors(capillary, log_pc, log_entry, water, oil, rock, carries, curves.pore_size_index,
                        curves.krw_max, curves.nw, curves.kro_max, curves.no, factor, low, high)
