@@ -252,6 +252,12 @@ rock_parameters = st.fixed_dictionaries({
                     pore_size_index=1.0),
          second=dict(swc=0.31429474799223117, sor=0.25, krw_max=1.0, kro_max=0.5, nw=1.0, no=1.0, j_entry=1.0,
                      pore_size_index=1.0), seed=0, limit="viscous", bc="periodic")
+# found by a random search: a tight rock barely entered (krw = 0.18 Sn^4.8 near its entry) beside
+# open sand, a phase contrast beyond 1e20 in a periodic block: its banded factorisation failed
+# (not positive definite) until phase permeabilities below 1e-12 of a copy's largest were cut
+@example(first=dict(swc=0.13, sor=0.02, krw_max=0.31, kro_max=0.27, nw=1.2, no=3.2, j_entry=0.47, pore_size_index=0.6),
+         second=dict(swc=0.05, sor=0.32, krw_max=0.18, kro_max=0.4, nw=4.8, no=1.5, j_entry=0.44, pore_size_index=4.1),
+         seed=853120, limit="capillary", bc="periodic")
 def test_coarse_curves_are_monotone_and_hold_the_water(first, second, seed, limit, bc):
     rng = np.random.default_rng(seed)
     shape = (6, 4, 4)

@@ -561,14 +561,27 @@ def _phase_factors(capillary, log_pc, log_entry, water, oil, rock, carries, expo
                     high[b, 1 + points + j] = max(high[b, 1 + points + j], o)
 
 
+#: a phase copy's cells whose phase permeability is below this fraction of the copy's largest
+#: carry none of that phase: the banded solver is held to contrasts of 1e12 (tests/core/test_extreme.py),
+#: Corey curves near their ends reach far more, and then lost the positive pivots of weakly joined pockets
+PHASE_CONTRAST = 1e-12
+
+
 @njit(parallel=True, cache=True)
-def _scaled_copies(factor, kept, copies, k, out):  # pragma: no cover - compiled
+def _scaled_copies(factor, kept, copies, k, contrast, out):  # pragma: no cover - compiled
     """out[c] = factor[kept[c]] * k[kept[c] // copies], copy by copy: the permeability of the
-    kept copies (factor (nb * copies, n), k (nb, n), out (len(kept), n))."""
+    kept copies (factor (nb * copies, n), k (nb, n), out (len(kept), n)); in the phase copies
+    (all but each domain's first) values below ``contrast`` times the copy's largest are 0."""
     for c in prange(kept.size):
         row, block = kept[c], kept[c] // copies
+        largest = 0.0
         for i in range(out.shape[1]):
             out[c, i] = factor[row, i] * k[block, i]
+            largest = max(largest, out[c, i])
+        if row % copies:
+            for i in range(out.shape[1]):
+                if out[c, i] < contrast * largest:
+                    out[c, i] = 0.0
 
 
 def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high: np.ndarray, bc: str
@@ -601,7 +614,8 @@ def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high
     for k in domain.k:
         out = np.empty((kept.size, n))
         with first_call(_scaled_copies):
-            _scaled_copies(factor.reshape(nb * copies, n), kept, copies, np.ascontiguousarray(k).reshape(nb, n), out)
+            _scaled_copies(factor.reshape(nb * copies, n), kept, copies, np.ascontiguousarray(k).reshape(nb, n),
+                           PHASE_CONTRAST, out)
         permeability.append(out.reshape(shape))
     lx, ly, lz = domain.lengths  # lx, ly are lines broadcast along the other axes: copied as lines
     lengths = (np.broadcast_to(lx[:, :, :1, :1][block], shape), np.broadcast_to(ly[:, :1, :, :1][block], shape),
