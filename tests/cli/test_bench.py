@@ -55,8 +55,11 @@ def test_bench_runs_and_agrees_with_the_plain_loop(capsys, monkeypatch):
     monkeypatch.setattr(bench, "_plain_block", recording_plain_block)
     figures = run_bench(shape=(10, 10, 10), sample=4)
     out = capsys.readouterr().out
-    assert "x the sealed time" in out and "multipliers add" in out and "x the single-phase time" in out
+    assert "x the sealed time" in out and "multipliers add" in out and "two-phase over single-phase" in out
     assert figures["two_phase_to_single"] == pytest.approx(figures["two_phase_seconds"] / figures["single_phase_seconds"])
+    assert figures["two_phase_to_single_cpu"] == pytest.approx(
+        figures["two_phase_cpu_seconds"] / figures["single_phase_cpu_seconds"])
+    assert figures["two_phase_to_sealed"] == pytest.approx(figures["two_phase_seconds"] / figures["sealed_seconds"])
     references = {"sealed": sealed_permeability, "periodic": periodic_permeability}
     field = lognormal_field(shape=(10, 10, 10), seed=0)   # the bench's field (seed 0)
     k = tuple(field[name].values for name in ("kx", "ky", "kz"))
