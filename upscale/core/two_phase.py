@@ -50,6 +50,18 @@ POINT_VARIABLES = ("sw", "pc") + tuple(f"kr{phase}_{a}" for phase in "wo" for a 
 BLOCK_VARIABLES = ("swc", "sor", "two_phase_residual")
 
 
+#: a block direction whose single-phase k is at most this fraction of the block's largest does
+#: not flow: the periodic solve leaves round-off there (e.g. 1e-28 mD beside 40 mD), and kr would
+#: be one round-off over another
+CLOSED_DIRECTION = 1e-12
+
+
+#: a phase copy's cells whose phase permeability is below this fraction of the copy's largest
+#: carry none of that phase: the banded solver is held to contrasts of 1e12 (tests/core/test_extreme.py),
+#: Corey curves near their ends reach far more, and then lost the positive pivots of weakly joined pockets
+PHASE_CONTRAST = 1e-12
+
+
 @dataclass(frozen=True)
 class TwoPhaseRecipe:
     """What ``two_phase`` computes.
@@ -451,7 +463,8 @@ def phase_permeability_ratios(cells: GridArrays, rocks: CellRocks, partition: Pa
     Returns
     -------
     water, oil : ndarray, (bx, by, bz, P, 3)
-        krw and kro per direction (0 where the block does not flow single-phase).
+        krw and kro per direction (0 where the block does not flow single-phase: its
+        single-phase k along that direction at most :data:`CLOSED_DIRECTION` of its largest).
     residual : ndarray, (bx, by, bz)
         The largest relative residual of the block's phase solves.
     single : FlowResult
@@ -478,6 +491,7 @@ def phase_permeability_ratios(cells: GridArrays, rocks: CellRocks, partition: Pa
             progress(batch.count)
     tensor, residual = tensor[blocks], residual[blocks]
     one = tensor[..., :1, :]
+    one = np.where(one > CLOSED_DIRECTION * one.max(axis=-1, keepdims=True), one, 0.0)
     water = divide_or_zero(tensor[..., 1:points + 1, :], one)
     oil = divide_or_zero(tensor[..., points + 1:, :], one)
     return water, oil, residual, single
@@ -559,12 +573,6 @@ def _phase_factors(capillary, log_pc, log_entry, water, oil, rock, carries, expo
                     high[b, 1 + j] = max(high[b, 1 + j], w)
                     low[b, 1 + points + j] = min(low[b, 1 + points + j], o)
                     high[b, 1 + points + j] = max(high[b, 1 + points + j], o)
-
-
-#: a phase copy's cells whose phase permeability is below this fraction of the copy's largest
-#: carry none of that phase: the banded solver is held to contrasts of 1e12 (tests/core/test_extreme.py),
-#: Corey curves near their ends reach far more, and then lost the positive pivots of weakly joined pockets
-PHASE_CONTRAST = 1e-12
 
 
 @njit(parallel=True, cache=True)
