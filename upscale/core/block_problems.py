@@ -792,7 +792,8 @@ def sealed_boundary(d: int) -> Boundary:
     return Boundary(tuple("dirichlet" if a == d else "noflow" for a in range(3)))
 
 
-def solve_domains(domain: LocalDomain, bc: str, directions=(0, 1, 2)) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def solve_domains(domain: LocalDomain, bc: str, directions=(0, 1, 2), clipped=None
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Effective tensors of a batch of local domains.
 
     Parameters
@@ -802,6 +803,9 @@ def solve_domains(domain: LocalDomain, bc: str, directions=(0, 1, 2)) -> tuple[n
         One of :data:`BOUNDARY_CONDITIONS`.
     directions : tuple of int
         For ``sealed``, the diagonal entries solved (the others are 0).
+    clipped : ndarray of bool, (nb,), optional
+        Periodic and linear: the domains whose symmetrised tensor is clipped to the nearest
+        positive semi-definite one (default all); the others are returned symmetrised only.
 
     Returns
     -------
@@ -826,7 +830,7 @@ def solve_domains(domain: LocalDomain, bc: str, directions=(0, 1, 2)) -> tuple[n
         solved = problem.solve(boundary, bc, cases)
         residual = np.maximum(residual, solved.residual)
         measure(problem, solved, boundary, bc, cases, velocity, gradient)
-    return _tensor(domain, bc, velocity, gradient, residual)
+    return _tensor(domain, bc, velocity, gradient, residual, clipped)
 
 
 def measure(problem: LocalProblem, solved: Solved, boundary: Boundary, bc: str, cases: tuple[int, ...],
@@ -992,9 +996,10 @@ def _sealed_unbordered(domain, q, through, d, velocity, gradient):
     gradient[:, d, d] = -np.divide(1.0, length, out=np.ones(nb), where=through)
 
 
-def _tensor(domain, bc, velocity, gradient, residual):
+def _tensor(domain, bc, velocity, gradient, residual, clipped=None):
     """Tensors (nb, 3, 3) in mD, residuals and asymmetry of a batch from the target-averaged
-    velocity and pressure gradient (nb, 3, 3): k = -<u> <grad p>^-1, symmetrised."""
+    velocity and pressure gradient (nb, 3, 3): k = -<u> <grad p>^-1, symmetrised, and those
+    of the ``clipped`` domains (nb,; None: all) made positive semi-definite."""
     nb = domain.count
     if bc == "sealed":
         return _sealed_tensor(domain, velocity, gradient), residual, np.zeros(nb)
@@ -1002,7 +1007,10 @@ def _tensor(domain, bc, velocity, gradient, residual):
     norm = np.linalg.norm(k, axis=(1, 2))
     asymmetry = np.divide(np.linalg.norm(k - k.transpose(0, 2, 1), axis=(1, 2)), norm,
                           out=np.zeros(nb), where=norm > 0)
-    return _positive_semidefinite(0.5 * (k + k.transpose(0, 2, 1))), residual, asymmetry
+    symmetric = 0.5 * (k + k.transpose(0, 2, 1))
+    clipped = slice(None) if clipped is None else clipped
+    symmetric[clipped] = _positive_semidefinite(symmetric[clipped])
+    return symmetric, residual, asymmetry
 
 
 def _sealed_tensor(domain, velocity, gradient):

@@ -634,9 +634,9 @@ def _phase_solves(domain: LocalDomain, factor: np.ndarray, low: np.ndarray, high
     residual = np.zeros(nb * copies)
     single = (np.zeros((nb, 3, 3)), np.zeros(nb), np.zeros(nb))
     if kept.size:
-        tensor, residual[kept], asymmetry = solve_domains(phases, bc)
-        diagonal[kept] = np.einsum("bii->bi", tensor)
-        first = kept % copies == 0
+        first = kept % copies == 0  # the single-phase copies: their whole tensor is kept (clipped)
+        tensor, residual[kept], asymmetry = solve_domains(phases, bc, clipped=first)
+        diagonal[kept] = np.maximum(np.einsum("bii->bi", tensor), 0.0)  # phase copies: their diagonal alone
         for whole, part in zip(single, (tensor, residual[kept], asymmetry)):
             whole[block[first]] = part[first]
     diagonal = diagonal.reshape(nb, copies, 3)
