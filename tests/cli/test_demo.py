@@ -6,6 +6,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 import xarray as xr
 
@@ -44,7 +45,7 @@ def test_demo_command_runs_end_to_end(tmp_path):
     summary = (tmp_path / "reports" / "demo" / "summary.txt").read_text()
     assert "Caution" in summary and "qualified engineers" in summary
     listed = [line.split(maxsplit=1)[1] for line in done.stdout.splitlines() if line.startswith("  ")]
-    assert len(listed) == 11 and all(Path(p).exists() for p in listed)
+    assert len(listed) == 12 and all(Path(p).exists() for p in listed)
     # The demo ends with the full report and prints where it is.
     report = tmp_path / "reports" / "demo" / "index.html"
     assert done.stdout.splitlines()[-1].startswith(f"report: {report}")
@@ -58,7 +59,16 @@ def test_demo_command_runs_end_to_end(tmp_path):
     # (the demo table): so is every block, a pore-volume-weighted mean of its cells
     active = curves["pore_volume"].values > 0
     assert curves["swc"].values[active].min() >= 0.12 - 1e-12 and curves["sor"].values[active].min() >= 0.18 - 1e-12
-    assert "Two-phase curves" in summary
+    assert "Two-phase curves (capillary limit" in summary
+    # the viscous limit beside it: at F = 0 every cell is at its swc, at F = 1 at 1 - sor, so its
+    # end points are the capillary limit's (every active cell of the demo has k > 0 and is entered
+    # by oil); both are pore-volume-weighted sums, to round-off
+    viscous = xr.open_dataset(tmp_path / "fields" / "demo_curves_viscous.nc")
+    assert viscous.attrs["two_phase_limit"] == "viscous" and "Two-phase curves (viscous limit)" in page
+    assert "Two-phase curves (viscous limit" in summary
+    for name in ("swc", "sor"):
+        np.testing.assert_allclose(viscous[name].values[active], curves[name].values[active], rtol=1e-12)
+    assert np.isfinite(viscous["krw_x"].values[active]).all() and np.isfinite(viscous["kro_z"].values[active]).all()
     metrics = json.loads((tmp_path / "reports" / "demo" / "metrics.json").read_text())
     for axis in "xyz":
         g = metrics["global"][axis]

@@ -12,6 +12,7 @@ from ..checks.blocks import block_errors
 from ..checks.faces import barrier_summary
 from ..checks.summary import field_summary
 from ..core.partition import make_partition
+from ..core.two_phase import LIMITS
 from ..gallery.demo_field import demo_field
 from ..gallery.demo_rocks import DEMO_ROCKS
 from ..io.coarse_file import coarse_effective
@@ -28,6 +29,10 @@ from ..scale.two_phase import two_phase
 from .check import run_check
 
 DEMO_RATIO = (5, 5, 5)
+
+
+#: the demo's curve file of each two-phase limit (keys of its paths)
+CURVE_PATHS = {"capillary": "curves", "viscous": "viscous_curves"}
 
 
 #: The demo's transient check takes 4 implicit Euler steps per doubling of time from 0.01 to
@@ -65,8 +70,8 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     Returns
     -------
     dict of Path
-        The paths written: fine, coarse, sealed, static, rocks, curves, multipliers, summary,
-        figure, report, metrics.
+        The paths written: fine, coarse, sealed, static, rocks, curves (capillary limit),
+        viscous curves, multipliers, summary, figure, report, metrics.
     """
     started = time.perf_counter()
     paths = _demo_paths(Path(folder))
@@ -76,13 +81,14 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
     cells = arrays(fine)
     partition = make_partition(cells.shape, ratio=DEMO_RATIO)
     save(_kx_maps(cells, partition, coarse), paths["figure"])
-    section, curves = _two_phase(fine, paths)
-    text = _summary(fine, cells, partition, coarse, static, paths) + "\n\n" + _two_phase_summary(curves, paths)
+    sections, curves = _two_phase(fine, paths)
+    text = "\n\n".join([_summary(fine, cells, partition, coarse, static, paths)]
+                       + [_two_phase_summary(curves[limit], paths, limit) for limit in LIMITS])
     atomic_write(paths["summary"], lambda tmp: Path(tmp).write_text(text + "\n"))
     print(f"coarse grids and two-phase curves written after {time.perf_counter() - started:.0f} s; now the "
           "whole-model steady and transient checks of the fine and coarse models (a few minutes)", flush=True)
     run_check(paths["fine"], paths["coarse"], report_dir=paths["report"].parent, transient=DEMO_TRANSIENT,
-              quiet=quiet, compare=[paths["sealed"]], sections=(section,))
+              quiet=quiet, compare=[paths["sealed"]], sections=sections)
     print(f"upscale demo finished in {time.perf_counter() - started:.1f} s")
     for name, path in paths.items():
         print(f"  {name:<12} {path}")
@@ -98,6 +104,7 @@ def _demo_paths(root: Path) -> dict[str, Path]:
     return {"fine": fields / "demo.nc", "coarse": fields / "demo_coarse.nc",
             "sealed": fields / "demo_coarse_sealed.nc", "static": fields / "demo_coarse_arithmetic.nc",
             "rocks": fields / "demo_rocks.toml", "curves": fields / "demo_curves.nc",
+            "viscous_curves": fields / "demo_curves_viscous.nc",
             "multipliers": reports / "multipliers.csv",
             "summary": reports / "summary.txt", "figure": reports / "fine_coarse_kx.png",
             "report": reports / "index.html", "metrics": reports / "metrics.json"}
@@ -118,20 +125,23 @@ def _coarse_grids(fine, paths: dict[str, Path]):
 
 
 def _two_phase(fine, paths: dict[str, Path]):
-    """The demo's rock table and its two-phase curves in the capillary limit, written; the
-    report section with the curves of a few blocks."""
+    """The demo's rock table and its two-phase curves in both limits, written; a report
+    section per limit with the curves of a few blocks."""
     atomic_write(paths["rocks"], lambda tmp: Path(tmp).write_text(DEMO_ROCKS))
     table = read_rock_table(paths["rocks"])
-    curves = two_phase(fine, table, ratio=DEMO_RATIO, limit="capillary")
-    write(curves, paths["curves"])
-    return ("Two-phase curves (capillary limit)", two_phase_section(curves, fine, table)), curves
+    curves, sections = {}, []
+    for limit in LIMITS:
+        curves[limit] = two_phase(fine, table, ratio=DEMO_RATIO, limit=limit)
+        write(curves[limit], paths[CURVE_PATHS[limit]])
+        sections.append((f"Two-phase curves ({limit} limit)", two_phase_section(curves[limit], fine, table)))
+    return tuple(sections), curves
 
 
-def _two_phase_summary(curves, paths: dict[str, Path]) -> str:
+def _two_phase_summary(curves, paths: dict[str, Path], limit: str) -> str:
     """Text: the two-phase curve file, its limit and the range of the block end points."""
     swc, sor = curves["swc"].values, curves["sor"].values
-    return (f"Two-phase curves ({curves.attrs['two_phase_limit']} limit, {curves.sizes['saturation_point']} points per "
-            f"block, rock table {paths['rocks']}): {paths['curves']}\nBlock end points: swc {np.nanmin(swc):.3f} to "
+    return (f"Two-phase curves ({limit} limit, {curves.sizes['saturation_point']} points per block, rock table "
+            f"{paths['rocks']}): {paths[CURVE_PATHS[limit]]}\nBlock end points: swc {np.nanmin(swc):.3f} to "
             f"{np.nanmax(swc):.3f}, sor {np.nanmin(sor):.3f} to {np.nanmax(sor):.3f}. "
             + curves.attrs["two_phase_caution"])
 
