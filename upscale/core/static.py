@@ -254,36 +254,41 @@ def _bound_conductances(k, dx, dy, dz, bypassed, ex, ey, ez, axis, lower, upper)
     """Per block the conductance of its cells' lines along ``axis`` in parallel (each a
     series of cell conductances k V / l^2) and of its slices across ``axis`` in series
     (each a parallel of them); a zero conductance is an infinite resistance, a cell of
-    ``bypassed`` (when it has the cells' shape) an infinite conductance."""
+    ``bypassed`` (when it has the cells' shape) an infinite conductance. One pass over the
+    cells; the blocks of one (x, y) column of blocks share their scratch arrays."""
     joined = bypassed.shape == k.shape
     nby, nbz = ey.shape[0] - 1, ez.shape[0] - 1
-    for b in prange(lower.size):
-        bx, by, bz = b // (nby * nbz), (b // nbz) % nby, b % nbz
-        x0, y0, z0 = ex[bx], ey[by], ez[bz]
-        size = (ex[bx + 1] - x0, ey[by + 1] - y0, ez[bz + 1] - z0)
-        along = size[axis]
-        lines = np.zeros(size[0] * size[1] * size[2] // along)  # resistance of each line
-        slices = np.zeros(along)                                # conductance of each slice
-        for i in range(x0, x0 + size[0]):
-            for j in range(y0, y0 + size[1]):
-                for c in range(z0, z0 + size[2]):
-                    length = dx[i] if axis == 0 else (dy[j] if axis == 1 else dz[i, j, c])
-                    g = k[i, j, c] * (dx[i] * dy[j] * dz[i, j, c]) / (length * length) if length > 0 else 0.0
-                    g = np.inf if joined and bypassed[i, j, c] else g
-                    if axis == 0:
-                        step, line = i - x0, (j - y0) * size[2] + c - z0
-                    elif axis == 1:
-                        step, line = j - y0, (i - x0) * size[2] + c - z0
-                    else:
-                        step, line = c - z0, (i - x0) * size[1] + j - y0
-                    slices[step] += g
-                    lines[line] += 1.0 / g if g > 0 else np.inf
-        parallel = 0.0
-        for r in lines:
-            parallel += 1.0 / r if 0 < r < np.inf else 0.0
-        series = 0.0
-        for g in slices:
-            series += 1.0 / g if g > 0 else np.inf
-        lower[bx, by, bz] = parallel
-        # series 0: every slice joined by pinch-outs
-        upper[bx, by, bz] = np.inf if series == 0 else (1.0 / series if series < np.inf else 0.0)
+    widest = (np.max(np.diff(ex)), np.max(np.diff(ey)), np.max(np.diff(ez)))
+    for column in prange((ex.shape[0] - 1) * nby):
+        bx, by = column // nby, column % nby
+        lines = np.empty(widest[0] * widest[1] * widest[2] // widest[axis])  # resistance of each line
+        slices = np.empty(widest[axis])                                        # conductance of each slice
+        for bz in range(nbz):
+            x0, y0, z0 = ex[bx], ey[by], ez[bz]
+            size = (ex[bx + 1] - x0, ey[by + 1] - y0, ez[bz + 1] - z0)
+            lines[:] = 0.0
+            slices[:] = 0.0
+            for i in range(x0, x0 + size[0]):
+                for j in range(y0, y0 + size[1]):
+                    for c in range(z0, z0 + size[2]):
+                        length = dx[i] if axis == 0 else (dy[j] if axis == 1 else dz[i, j, c])
+                        g = k[i, j, c] * (dx[i] * dy[j] * dz[i, j, c]) / (length * length) if length > 0 else 0.0
+                        g = np.inf if joined and bypassed[i, j, c] else g
+                        if axis == 0:
+                            step, line = i - x0, (j - y0) * size[2] + c - z0
+                        elif axis == 1:
+                            step, line = j - y0, (i - x0) * size[2] + c - z0
+                        else:
+                            step, line = c - z0, (i - x0) * size[1] + j - y0
+                        slices[step] += g
+                        lines[line] += 1.0 / g if g > 0 else np.inf
+            parallel = 0.0
+            for line in range(size[0] * size[1] * size[2] // size[axis]):
+                r = lines[line]
+                parallel += 1.0 / r if 0 < r < np.inf else 0.0
+            series = 0.0
+            for step in range(size[axis]):
+                series += 1.0 / slices[step] if slices[step] > 0 else np.inf
+            lower[bx, by, bz] = parallel
+            # series 0: every slice joined by pinch-outs
+            upper[bx, by, bz] = np.inf if series == 0 else (1.0 / series if series < np.inf else 0.0)

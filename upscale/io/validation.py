@@ -253,7 +253,8 @@ def _normalised(ds: xr.Dataset, sizes: dict[str, xr.DataArray], dz: xr.DataArray
         {
             "dx": (("x",), sizes["dx"].data, {"units": "m"}),
             "dy": (("y",), sizes["dy"].data, {"units": "m"}),
-            "dz": (AXES, dz.data, {"units": "m"}),
+            # in memory, a real array rather than the broadcast view of a dz(z): kernels read it often
+            "dz": (AXES, dz.data if dz.chunks is not None else np.ascontiguousarray(dz.data), {"units": "m"}),
             **{n: (AXES, normal[n].data, {"units": "mD"}) for n in PERMEABILITY},
             "porosity": (AXES, normal["porosity"].data, {"units": "1"}),
             "ntg": (AXES, normal["ntg"].data, {"units": "1"}),
