@@ -11,7 +11,7 @@ from ..checks.blocks import TOLERANCE
 from ..checks.run import check_models, parse_checks
 from ..checks.steady import BYTES_PER_CELL
 from ..errors import InputError
-from ..io.reading import check_readable, open_field
+from ..io.reading import grid_sizes, open_field
 from ..io.sector import block_window, coarse_sector, describe, parse_window
 from ..report.check_report import build_report
 from ..report.text import format_check
@@ -57,11 +57,7 @@ def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERA
 
 def _refuse_too_big(path, memory: int) -> None:
     """Refuse a fine model whose checks need more than ``memory`` bytes (read from the header)."""
-    import netCDF4
-
-    with netCDF4.Dataset(check_readable(path)) as nc:
-        shape = [len(nc.dimensions[d]) for d in ("x", "y", "z") if d in nc.dimensions]
-    cells = math.prod(shape)
+    cells = math.prod(grid_sizes(path).values())
     need = PROCESS_BYTES + cells * BYTES_PER_CELL
     if need > memory:
         raise InputError(f"{path}: checking the whole model of {cells:,} cells needs about {need / 2 ** 30:.1f} GB "

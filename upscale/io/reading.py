@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from ..core.grid import AXES
 from ..errors import InputError
 from .validation import validate
 
@@ -169,6 +170,25 @@ def check_readable(path: str | os.PathLike) -> Path:
         raise InputError(f"{path}: is a folder, expected a NetCDF file")
     _probe_header(path)
     return path
+
+
+def grid_sizes(path: str | os.PathLike) -> dict[str, int]:
+    """The lengths of the dimensions x, y, z (those present) from a file's header alone.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        A NetCDF file (refused as by :func:`check_readable`).
+
+    Returns
+    -------
+    dict
+        Dimension name -> length.
+    """
+    import netCDF4
+
+    with netCDF4.Dataset(check_readable(path)) as nc:
+        return {d: len(nc.dimensions[d]) for d in AXES if d in nc.dimensions}
 
 
 def open_field(path: str | os.PathLike, chunks=None, window=None) -> xr.Dataset:
