@@ -51,12 +51,17 @@ FLOW_PERMEABILITY = {"x": "kx*ntg", "y": "ky*ntg", "z": "kz"}
 
 #: bytes per cell of a slab while a pass reads it: the slab read and normalised, its
 #: arrays, the flow permeabilities and the keys of the searches (DEVELOPERS.md)
-SLAB_BYTES_PER_CELL = 400
+SLAB_BYTES_PER_CELL = 250
 
 
-#: bytes the statistics hold whatever the slab: histograms and collected samples of the
-#: percentile searches, the Lorenz bins of three axes
-STATISTICS_BYTES = 64 * 2 ** 20
+#: bytes of decompressed file chunks kept per variable while a field is read in slabs
+#: (:func:`upscale.io.reading.limit_chunk_cache`): one stored chunk of the box writer
+READ_CACHE_BYTES = 8 * 2 ** 20
+
+
+#: bytes held whatever the slab: histograms and collected samples of the percentile
+#: searches, the Lorenz bins of three axes, the read cache of eight variables
+STATISTICS_BYTES = 64 * 2 ** 20 + 8 * READ_CACHE_BYTES
 
 
 def summary_slab(shape, memory: int, reserved: int = 0) -> int:

@@ -408,10 +408,10 @@ def _memory_plan(args):
 
 def _inspect(args) -> int:
     """``upscale inspect``: the field summary as text or JSON."""
-    from ..checks.summary import field_summary, summary_slab
+    from ..checks.summary import READ_CACHE_BYTES, field_summary, summary_slab
     from ..core.grid import AXES
     from ..io.pinch_outs import with_pinch_outs
-    from ..io.reading import grid_sizes
+    from ..io.reading import grid_sizes, limit_chunk_cache, open_field
     from ..io.schema import pinch_connections
     from ..report.text import format_summary
     from ..scale.memory import PROCESS_BYTES
@@ -420,10 +420,11 @@ def _inspect(args) -> int:
     plan = _memory_plan(args)
     sizes = grid_sizes(args.file)
     slab = summary_slab([sizes.get(d, 1) for d in AXES], plan.memory, PROCESS_BYTES)  # before any work
-    field = plan.open(args.file)
+    limit_chunk_cache(READ_CACHE_BYTES)
+    field = open_field(args.file, chunks={"x": slab, "y": -1, "z": -1})
     recorded = pinch_connections(field) if pinch["pinch_connections"] is None else pinch["pinch_connections"]
-    passes = []
-    summary = field_summary(with_pinch_outs(field, recorded, pinch["pinch_thickness"]), slab=slab, passes=passes)
+    passes = []  # the field is checked, then summarised, one slab (chunk) at a time
+    summary = field_summary(with_pinch_outs(field, recorded, pinch["pinch_thickness"]), passes=passes)
     if not args.quiet:
         count = f"{passes[0]} pass{'' if passes[0] == 1 else 'es'}"
         print(f"upscale inspect: {count} over {passes[1]} slab(s) of at most {slab} x planes "

@@ -51,7 +51,8 @@ def _samples(values, weight) -> tuple[np.ndarray, np.ndarray]:
         if not np.all(np.isfinite(weight)) or np.any(weight < 0):
             raise ValueError("weights must be finite and >= 0")
     keep = weight > 0
-    values, weight = values[keep], weight[keep]
+    if not keep.all():
+        values, weight = values[keep], weight[keep]
     if not np.all(np.isfinite(values)):
         raise ValueError("values must be finite where the weight is positive")
     return values, weight
@@ -355,7 +356,8 @@ def _lorenz_samples(k, porosity, thickness) -> tuple[np.ndarray, np.ndarray, np.
     if not np.all(np.isfinite(thickness)) or np.any(thickness < 0):
         raise ValueError("thickness must be finite and >= 0")
     keep = thickness > 0
-    k, porosity, thickness = k[keep], porosity[keep], thickness[keep]
+    if not keep.all():
+        k, porosity, thickness = k[keep], porosity[keep], thickness[keep]
     if not (np.all(np.isfinite(k)) and np.all(np.isfinite(porosity))):
         raise ValueError("k and porosity must be finite where the thickness is positive")
     if np.any(k < 0) or np.any(porosity < 0):

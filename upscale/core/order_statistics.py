@@ -39,8 +39,12 @@ TOP = np.uint64(1 << 63)
 
 def sort_keys(values) -> np.ndarray:
     """uint64 keys that sort as the float64 ``values`` do (-0.0 counts as 0.0; no NaN)."""
-    bits = (np.asarray(values, dtype=np.float64) + 0.0).view(np.uint64)
-    return np.where(bits & TOP, ~bits, bits | TOP)
+    bits = (np.asarray(values, dtype=np.float64) + 0.0).view(np.uint64)  # a new array, changed in place
+    flip = bits >> np.uint64(63)
+    np.negative(flip, out=flip)   # all ones for a negative value (its order reversed), else 0
+    flip |= TOP
+    bits ^= flip
+    return bits
 
 
 def key_values(keys) -> np.ndarray:
@@ -97,9 +101,10 @@ class KeyBin:
     def feed(self, keys: np.ndarray, weights: np.ndarray | None) -> None:
         """One slab's samples: keys (:func:`sort_keys`) and weights (None: counted)."""
         if self.depth:
-            inside = (keys >= np.uint64(self.low)) & (keys <= np.uint64(self.high))
-            self.below = _nearest(self.below, keys, weights, keys < np.uint64(self.low), np.max, max)
-            self.above = _nearest(self.above, keys, weights, keys > np.uint64(self.high), np.min, min)
+            below, above = keys < np.uint64(self.low), keys > np.uint64(self.high)
+            self.below = _nearest(self.below, keys, weights, below, np.max, max)
+            self.above = _nearest(self.above, keys, weights, above, np.min, min)
+            inside = ~(below | above)
             keys = keys[inside]
             weights = None if weights is None else weights[inside]
         if keys.size == 0:

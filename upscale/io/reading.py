@@ -191,6 +191,22 @@ def grid_sizes(path: str | os.PathLike) -> dict[str, int]:
         return {d: len(nc.dimensions[d]) for d in AXES if d in nc.dimensions}
 
 
+def limit_chunk_cache(size: int) -> None:
+    """Hold at most ``size`` bytes of decompressed file chunks per variable of the files
+    opened from now on, in this process (the NetCDF library's default, 64 MB a variable,
+    keeps whole variables of a field read slab by slab: about 400 MB for eight).
+
+    Parameters
+    ----------
+    size : int
+        Bytes per variable.
+    """
+    import netCDF4
+
+    _, elements, preemption = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(int(size), elements, preemption)
+
+
 def open_field(path: str | os.PathLike, chunks=None, window=None) -> xr.Dataset:
     """Read and validate a fine (or coarse) field file.
 
