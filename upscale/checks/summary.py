@@ -87,7 +87,7 @@ def summary_slab(shape, memory: int, reserved: int = 0) -> int:
     if planes < 1:
         least = math.ceil((reserved + STATISTICS_BYTES + plane) / 2 ** 20)
         raise InputError(f"inspect: one slab of the field (one x plane, {ny} x {nz} cells) needs about "
-                         f"{plane / 2 ** 20:.0f} MB beside {(reserved + STATISTICS_BYTES) / 2 ** 20:.0f} MB for the "
+                         f"{plane / 2 ** 20:.1f} MB beside {(reserved + STATISTICS_BYTES) / 2 ** 20:.0f} MB for the "
                          f"process and the statistics, more than the budget of {memory / 2 ** 20:.0f} MB; "
                          f"give --memory {least}MB or more")
     return int(min(planes, nx))
