@@ -7,6 +7,7 @@ import sys
 import time
 from pathlib import Path
 
+from .._runtime import hold_to_budget
 from ..checks.blocks import TOLERANCE
 from ..checks.run import check_models, parse_checks
 from ..checks.steady import BYTES_PER_CELL
@@ -28,11 +29,13 @@ def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERA
     ``window``: a sector ``X0:X1,Y0:Y1,Z0:Z1`` (fine indices on whole coarse blocks) checked
     as a model of its own, read alone from the fine file; ``memory``: the budget, bytes
     (default half the memory available): a whole model that needs more is refused before
-    any work, with a hint to check a sector; ``pinch_connections``, ``pinch_thickness``: the
-    fine model's pinch-out settings (None: as the coarse grid was made); ``sections``: more
-    (title, HTML) sections for the report (the demo's two-phase curves).
+    any work, with a hint to check a sector, and the fine checks start no more worker
+    processes than it holds; ``pinch_connections``, ``pinch_thickness``: the fine model's
+    pinch-out settings (None: as the coarse grid was made); ``sections``: more (title, HTML)
+    sections for the report (the demo's two-phase curves).
     """
     parse_checks(checks)  # refused before the files are read
+    hold_to_budget(memory)  # the fine checks' worker processes are counted within it
     coarse = open_field(coarse_path)
     others = {Path(path).name: open_field(path) for path in compare}
     if window is None:
