@@ -29,17 +29,15 @@ from pathlib import Path
 UPSCALE = [sys.executable, "-m", "upscale.cli"]
 
 
-def _tree_rss_mb(root: int) -> float:
-    """Summed resident memory (MB) of ``root`` and all its descendants, from /proc."""
-    parents, rss = {}, {}
+def process_tree(root: int) -> set[int]:
+    """``root`` and all its descendants, from /proc."""
+    parents = {}
     for entry in os.listdir("/proc"):
         if not entry.isdigit():
             continue
         try:
             with open(f"/proc/{entry}/stat") as handle:
-                fields = handle.read().rsplit(")", 1)[1].split()
-            parents[int(entry)] = int(fields[1])
-            rss[int(entry)] = int(fields[21]) * os.sysconf("SC_PAGE_SIZE")
+                parents[int(entry)] = int(handle.read().rsplit(")", 1)[1].split()[1])
         except (OSError, IndexError, ValueError):
             continue
     tree, grew = {root}, True
@@ -49,7 +47,19 @@ def _tree_rss_mb(root: int) -> float:
             if parent in tree and pid not in tree:
                 tree.add(pid)
                 grew = True
-    return sum(rss.get(pid, 0) for pid in tree) / 2 ** 20
+    return tree
+
+
+def _tree_rss_mb(root: int) -> float:
+    """Summed resident memory (MB) of ``root`` and all its descendants, from /proc."""
+    total = 0
+    for pid in process_tree(root):
+        try:
+            with open(f"/proc/{pid}/stat") as handle:
+                total += int(handle.read().rsplit(")", 1)[1].split()[21]) * os.sysconf("SC_PAGE_SIZE")
+        except (OSError, IndexError, ValueError):
+            continue
+    return total / 2 ** 20
 
 
 def measured(*args) -> dict:

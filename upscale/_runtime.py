@@ -68,16 +68,31 @@ def keep_heap_small() -> None:
         pass
 
 
+_BUDGET = None  # bytes a command was given (--memory), or None
+
+
+def hold_to_budget(memory: int | None) -> None:
+    """From now on, in this process and the processes it forks, :func:`available_memory`
+    reports at most ``memory`` bytes (a command's --memory); None lifts the cap."""
+    global _BUDGET
+    _BUDGET = None if memory is None else int(memory)
+
+
 def available_memory() -> int:
-    """MemAvailable from /proc/meminfo in bytes (total physical memory where unknown)."""
+    """MemAvailable from /proc/meminfo in bytes (total physical memory where unknown), at
+    most the budget of :func:`hold_to_budget`."""
+    found = None
     try:
         with open("/proc/meminfo") as handle:
             for line in handle:
                 if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
+                    found = int(line.split()[1]) * 1024
+                    break
     except OSError:
         pass
-    return os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    if found is None:
+        found = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    return found if _BUDGET is None else min(found, _BUDGET)
 
 
 _SHARED = None  # (function, data) the forked workers of forked_map read, inherited, not pickled

@@ -90,12 +90,10 @@ def test_cell_statistics_match_numpy():
     for name in ("kx", "ky", "kz", "porosity", "ntg"):
         values = v[name][mask]
         entry = s["values"][name]
+        # order statistics exactly (numpy's own arithmetic), the mean to round-off
         p10, p50, p90 = np.percentile(values, [10, 50, 90])
-        assert entry["p10"] == pytest.approx(p10, rel=1e-12), name
-        assert entry["p50"] == pytest.approx(p50, rel=1e-12), name
-        assert entry["p90"] == pytest.approx(p90, rel=1e-12), name
-        assert entry["min"] == pytest.approx(values.min(), rel=1e-12), name
-        assert entry["max"] == pytest.approx(values.max(), rel=1e-12), name
+        assert (entry["p10"], entry["p50"], entry["p90"]) == (p10, p50, p90), name
+        assert (entry["min"], entry["max"]) == (values.min(), values.max()), name
         assert entry["mean"] == pytest.approx(values.mean(), rel=1e-12), name
     assert s["values"]["kx"]["units"] == "mD"
 
@@ -317,3 +315,102 @@ def test_unnormalised_field_is_refused():
     raw = fine_dataset(**{k: v for k, v in inputs().items() if k not in ("ntg", "active")})
     with pytest.raises(InputError, match="validate"):
         field_summary(raw)
+
+
+def _flat(summary, prefix=""):
+    out = {}
+    for key, value in summary.items():
+        out.update(_flat(value, f"{prefix}{key}.") if isinstance(value, dict) else {prefix + key: value})
+    return out
+
+
+#: what does not depend on the slabs at all: counts, extremes, order statistics
+EXACT = ("shape", "cells", "active_cells", "pinched", ".min", ".max", ".p10", ".p50", ".p90", "dims", "units",
+         "count", "permeability", "length_")
+
+
+def _assert_same_summary(got, expected, label):
+    got, expected = _flat(got), _flat(expected)
+    assert sorted(got) == sorted(expected)
+    for key, value in expected.items():
+        if any(part in key for part in EXACT) or not isinstance(value, float):
+            assert got[key] == value, (label, key)
+        else:   # sums in another order: round-off (1e-12)
+            assert got[key] == pytest.approx(value, rel=1e-12, nan_ok=True), (label, key)
+
+
+def _bigger_field():
+    """30 x 8 x 12 cells with pinched and inactive cells and many equal values (ntg 1 in most cells)."""
+    rng = np.random.default_rng(9)
+    shape = (30, 8, 12)
+    dz = rng.uniform(0.5, 3.0, shape)
+    dz[rng.random(shape) < 0.05] = 0.0
+    active = (rng.random(shape) > 0.05).astype(np.int8)
+    kx = np.exp(rng.normal(3.0, 2.0, shape))
+    ntg = np.where(rng.random(shape) < 0.6, 1.0, rng.uniform(0.2, 1.0, shape))
+    return validate(fine_dataset(kx, 0.5 * kx, np.exp(rng.normal(0.0, 1.0, shape)), rng.uniform(0.05, 0.3, shape),
+                                 rng.uniform(5, 30, shape[0]), rng.uniform(5, 30, shape[1]), dz, ntg=ntg, active=active))
+
+
+@pytest.mark.parametrize("limit", [None, 4])
+def test_a_summary_in_slabs_equals_the_one_in_memory(monkeypatch, limit):
+    # Slabs of 1, 4, 7 and 29 x planes (the last slabs shorter): counts (pinch-out
+    # connections too: slabs hold whole columns), extremes and the percentiles exactly the
+    # same, sums and the measures built on them to round-off; a collection limit of 4
+    # samples makes the percentile searches narrow their bins over several passes instead
+    # of collecting them in the second.
+    import upscale.core.order_statistics as order_statistics
+
+    if limit is not None:
+        monkeypatch.setattr(order_statistics, "COLLECT_LIMIT", limit)
+    ds = _bigger_field()
+    passes = []
+    whole = field_summary(ds, passes=passes)
+    assert passes[1] == 1 and passes[0] >= (3 if limit else 2)
+    # the pinch-out connections, counted per slab, are among the exact counts compared
+    assert whole["pinch_outs"]["connections_made"] > 0
+    for slab in (1, 4, 7, 29):
+        counted = []
+        _assert_same_summary(field_summary(ds, slab=slab, passes=counted), whole, slab)
+        assert counted == [passes[0], -(-30 // slab)]
+    # a lazy field, read chunk by chunk, is a field in slabs too
+    _assert_same_summary(field_summary(ds.chunk({"x": 6})), whole, "lazy")
+
+
+def test_inspect_within_a_small_memory_budget_reads_many_slabs(tmp_path, cli_command, cli_env):
+    # 40 x 100 x 20 cells: 2,000 cells per x plane; 440 MB leave about 12 MB after the
+    # process (300 MB), the statistics and the read cache (128 MB): a few x planes per slab. The JSON must be
+    # the in-memory one (same rules as above).
+    import subprocess
+
+    from upscale.checks.summary import summary_slab
+
+    rng = np.random.default_rng(4)
+    shape = (40, 100, 20)
+    kx = np.exp(rng.normal(3.0, 1.5, shape))
+    ds = fine_dataset(kx, kx, 0.1 * kx, rng.uniform(0.1, 0.3, shape), np.full(40, 20.0), np.full(100, 10.0),
+                      rng.uniform(0.5, 2.0, shape), ntg=np.where(rng.random(shape) < 0.5, 1.0, 0.7))
+    ds.to_netcdf(tmp_path / "field.nc")
+    planes = summary_slab(shape, 440 * 2 ** 20, 300 * 2 ** 20)
+    assert 1 < planes < 40
+    done = subprocess.run([*cli_command, "inspect", "field.nc", "--json", "--memory", "440MB"], cwd=tmp_path,
+                          env=cli_env, capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    assert f"over {-(-40 // planes)} slab(s) of at most {planes} x planes" in done.stderr
+    _assert_same_summary(json.loads(done.stdout), field_summary(validate(ds)), "cli")
+
+
+def test_inspect_refuses_a_field_whose_one_slab_does_not_fit(tmp_path, cli_command, cli_env):
+    # One x plane of 300 x 200 cells needs about 15 MB, more than a 440 MB budget leaves:
+    # refused before any work, in one line, exit code 2, nothing printed on stdout.
+    import subprocess
+
+    shape = (2, 300, 200)
+    k = np.full(shape, 10.0)
+    fine_dataset(k, k, k, np.full(shape, 0.2), [10.0, 10.0], np.full(300, 10.0), np.full(200, 1.0)).to_netcdf(
+        tmp_path / "wide.nc")
+    done = subprocess.run([*cli_command, "inspect", "wide.nc", "--memory", "440MB"], cwd=tmp_path, env=cli_env,
+                          capture_output=True, text=True)
+    assert done.returncode == 2 and done.stdout == ""
+    assert len(done.stderr.strip().splitlines()) == 1
+    assert "one x plane, 300 x 200 cells" in done.stderr and "give --memory" in done.stderr

@@ -402,7 +402,9 @@ def test_invariants_over_random_fields_and_partitions(spec, factor, bc, order):
     tensor = flow_tensors(cells, part, bc).tensor
     assert np.all(np.isfinite(tensor))
     scaled = flow_tensors(make_cells(factor * k), part, bc).tensor
-    np.testing.assert_allclose(scaled, factor * tensor, rtol=1e-8, atol=1e-12 * factor)
+    # cross terms that are 0 in exact arithmetic come out at round-off of the largest
+    # entry (1.4e-11 against 2.3e4 in one case found): atol relative to it
+    np.testing.assert_allclose(scaled, factor * tensor, rtol=1e-8, atol=1e-12 * factor * max(1.0, np.abs(tensor).max()))
     np.testing.assert_allclose(tensor, np.swapaxes(tensor, -1, -2), atol=1e-12)
     assert np.all(np.linalg.eigvalsh(tensor) >= -1e-12 * max(1.0, np.abs(tensor).max()))
     swapped = np.transpose(k, order)

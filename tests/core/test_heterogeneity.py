@@ -10,11 +10,16 @@ from scipy.stats import norm
 
 from upscale.core.heterogeneity import (
     DP_LOW_PERCENTILE,
+    LORENZ_BINS,
+    CoefficientOfVariation,
+    DykstraParsons,
+    LorenzCurve,
     coefficient_of_variation,
     dykstra_parsons,
     lorenz,
     weighted_percentile,
 )
+from upscale.core.order_statistics import in_one_slab
 
 N = 200_000
 BATCHES = 20
@@ -223,3 +228,51 @@ def test_lorenz_range_and_scale_invariance(sample, scale):
     value = lorenz(k, phi, w)
     assert 0.0 <= value < 1.0
     assert close(lorenz(scale * k, phi, w), value)
+
+
+def _sorted_lorenz(flow, storage):
+    """Schmalz & Rahme (1950): samples sorted by flow over storage capacity, largest first;
+    cumulative fractions of flow against storage from the origin; 2 (area - 1/2)."""
+    order = np.argsort(-flow / storage)
+    f = np.concatenate([[0.0], np.cumsum(flow[order]) / flow.sum()])
+    s = np.concatenate([[0.0], np.cumsum(storage[order]) / storage.sum()])
+    return float(2 * (np.trapezoid(f, s) - 0.5))
+
+
+@pytest.mark.parametrize("bins", [16, 1 << 10, LORENZ_BINS])
+def test_binned_lorenz_is_below_the_sorted_one_by_at_most_its_bound(bins):
+    # The curve through the bins' totals lies below the concave curve of the sorted samples;
+    # the bound (a triangle per bin) must cover the gap. A cluster of nearly equal ratios
+    # shares one bin even when bins are fine, and coarse bins make the bound large.
+    rng = np.random.default_rng(21)
+    k = np.concatenate([np.exp(rng.normal(3.0, 2.0, 40_000)), 100.0 * (1 + 1e-7 * rng.random(5_000))])
+    porosity = np.concatenate([rng.uniform(0.05, 0.3, 40_000), np.full(5_000, 0.2)])
+    thickness = rng.uniform(0.5, 2.0, k.size)
+    curve = in_one_slab(LorenzCurve(bins), k, porosity, thickness)
+    value, bound = curve.result()
+    exact = _sorted_lorenz(k * thickness, porosity * thickness)
+    # 1e-12: rounding of the two areas (sums of 45,000 terms of order 1)
+    assert value <= exact + 1e-12 and exact <= value + bound + 1e-12, (value, exact, bound)
+    if bins == 16:
+        assert bound > 1e-3 and exact - value > 0.01 * bound   # coarse bins: a real gap, still covered
+    if bins == LORENZ_BINS:
+        assert bound < 1e-6
+
+
+def test_the_measures_in_slabs_equal_the_measures_in_memory():
+    # Fed in slabs of several sizes, pass after pass, each measure gives its in-memory
+    # value up to the round-off of sums in another order (1e-12).
+    rng = np.random.default_rng(5)
+    k, porosity, weight = np.exp(rng.normal(2.0, 1.5, 30_000)), rng.uniform(0.1, 0.3, 30_000), rng.uniform(1, 3, 30_000)
+    for cuts in ([7], list(range(1000, 30_000, 1000)), [29_999]):
+        pieces = np.split(np.arange(k.size), cuts)
+        for measure, arrays, expected in ((CoefficientOfVariation(), (k, weight), coefficient_of_variation(k, weight)),
+                                          (DykstraParsons(), (k, weight), dykstra_parsons(k, weight)),
+                                          (LorenzCurve(), (k, porosity, weight), lorenz(k, porosity, weight))):
+            while not measure.done:
+                for piece in pieces:
+                    measure.feed(*(a[piece] for a in arrays))
+                measure.end_pass()
+            got = measure.result()
+            got = got[0] if isinstance(got, tuple) else got
+            assert got == pytest.approx(expected, rel=1e-12), type(measure).__name__

@@ -78,27 +78,33 @@ def _relative(a: float, b: float) -> float | None:
     return value if math.isfinite(value) else None
 
 
-def fine_patch_rates(cells: GridArrays, partition: Partition, tolerance: float = 1e-10,
-                     direct_limit: int = DIRECT_LIMIT, homogeneous: bool = False) -> dict[str, float]:
-    """Rate of every diagonal flow through the fine field (or, ``homogeneous``, through the
-    floor's homogeneous field of the same grid), mD*m per unit drop. A model too large for
-    the direct solver runs its flows on forked worker processes, like the steady check."""
+def fine_patch_rate(cells: GridArrays, partition: Partition, flow: PatchFlow, homogeneous: bool = False,
+                    tolerance: float = 1e-10, direct_limit: int = DIRECT_LIMIT) -> float:
+    """Rate of one diagonal flow through the fine field (or, ``homogeneous``, through the
+    floor's homogeneous field of the same grid), mD*m per unit drop."""
     if homogeneous:
         (_, faces, half), _ = _homogeneous_models(cells, partition)
     else:
         half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz,
                                          cells.pinch_connections)
+    return patch_rate(faces, half[flow.axis], patch_masks(partition, flow)[0], flow, cells.dx, cells.dy, cells.dz,
+                      tolerance, direct_limit)
+
+
+def fine_patch_rates(cells: GridArrays, partition: Partition, tolerance: float = 1e-10,
+                     direct_limit: int = DIRECT_LIMIT, homogeneous: bool = False) -> dict[str, float]:
+    """:func:`fine_patch_rate` of every diagonal flow, by name. A model too large for the
+    direct solver runs its flows on forked worker processes, like the steady check."""
     processes = axis_processes(math.prod(cells.shape), direct_limit)
-    rates = forked_map(_fine_flow, (cells, partition, faces, half, tolerance, direct_limit), list(PATCH_FLOWS),
+    rates = forked_map(_fine_flow, (cells, partition, homogeneous, tolerance, direct_limit), list(PATCH_FLOWS),
                        processes)
     return {flow.name: rate for flow, rate in zip(PATCH_FLOWS, rates)}
 
 
 def _fine_flow(shared, flow: PatchFlow) -> float:
     """One diagonal flow through the fine grid (in a forked worker, on the data it inherited)."""
-    cells, partition, faces, half, tolerance, direct_limit = shared
-    return patch_rate(faces, half[flow.axis], patch_masks(partition, flow)[0], flow, cells.dx, cells.dy, cells.dz,
-                      tolerance, direct_limit)
+    cells, partition, homogeneous, tolerance, direct_limit = shared
+    return fine_patch_rate(cells, partition, flow, homogeneous, tolerance, direct_limit)
 
 
 def coarse_patch_rates(coarse: xr.Dataset, partition: Partition, tolerance: float = 1e-10) -> dict[str, float]:
@@ -110,10 +116,10 @@ def coarse_patch_rates(coarse: xr.Dataset, partition: Partition, tolerance: floa
 
 
 def floors(cells: GridArrays, partition: Partition, tolerance: float = 1e-10,
-           direct_limit: int = DIRECT_LIMIT) -> dict[str, float | None]:
+           direct_limit: int = DIRECT_LIMIT, fine_rates: dict | None = None) -> dict[str, float | None]:
     """The floor of every diagonal flow: its relative error coarse against fine on the
-    homogeneous field of the same grids."""
-    fine = fine_patch_rates(cells, partition, tolerance, direct_limit, homogeneous=True)
+    homogeneous field of the same grids (the fine rates given, or solved here)."""
+    fine = fine_rates or fine_patch_rates(cells, partition, tolerance, direct_limit, homogeneous=True)
     _, ((dx, dy, dz), faces, half) = _homogeneous_models(cells, partition)
     return {flow.name: _relative(patch_rate(faces, half[flow.axis], patch_masks(partition, flow)[1], flow, dx, dy,
                                             dz, tolerance), fine[flow.name]) for flow in PATCH_FLOWS}
@@ -132,7 +138,8 @@ def compare(fine_rates: dict, coarse_rates: dict, floor: dict) -> dict:
 
 
 def diagonal_check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = 1e-10,
-                   direct_limit: int = DIRECT_LIMIT) -> dict:
+                   direct_limit: int = DIRECT_LIMIT, fine_rates: dict | None = None,
+                   floor_rates: dict | None = None) -> dict:
     """Compare the diagonal flows of a fine field and its coarse grid; JSON-ready dict.
 
     Parameters
@@ -141,6 +148,11 @@ def diagonal_check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = 1e-1
         The fine field and its coarse grid.
     tolerance : float
         Relative residual of every solve.
+    direct_limit : int
+        Largest model solved directly.
+    fine_rates, floor_rates : dict, optional
+        The fine rates of every flow through the field and through the floor's homogeneous
+        field (:func:`fine_patch_rate` by flow name), already solved; None: solved here.
 
     Returns
     -------
@@ -155,5 +167,6 @@ def diagonal_check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = 1e-1
     coarse = validate(coarse, where="coarse grid")
     cells = arrays(fine)
     partition = coarse_partition(coarse, cells.shape)
-    return compare(fine_patch_rates(cells, partition, tolerance, direct_limit),
-                   coarse_patch_rates(coarse, partition, tolerance), floors(cells, partition, tolerance, direct_limit))
+    return compare(fine_rates or fine_patch_rates(cells, partition, tolerance, direct_limit),
+                   coarse_patch_rates(coarse, partition, tolerance),
+                   floors(cells, partition, tolerance, direct_limit, floor_rates))

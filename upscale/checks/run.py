@@ -10,6 +10,7 @@ import math
 import xarray as xr
 
 from ..core.grid import AXES
+from ..core.patch_flows import PATCH_FLOWS
 from ..core.units import LENGTH_TO_M
 from ..errors import InputError
 from ..io.coarse_file import coarse_partition
@@ -19,6 +20,7 @@ from ..io.validation import validate
 from .blocks import TOLERANCE, block_errors, flow_reference
 from .diagonal import coarse_patch_rates, diagonal_check
 from .faces import barrier_summary
+from .fine_solves import fine_jobs, fine_solutions
 from .layering import grouping_of_coarse_grid
 from .steady import coarse_model_check, steady_check
 from .transient import check_options, transient_check
@@ -67,9 +69,10 @@ def check_models(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = TOLERA
     say = say or (lambda line: None)
     metrics = {"checks": {"run": list(chosen), "left_out": [c for c in CHECKS if c not in chosen]}}
     arrays_ = {"cells": cells, "partition": partition, "coarse": coarse, "fine": fine}
+    solved = _fine_solves(fine, coarse, cells, partition, chosen, transient, say)
     for name in chosen:
         STAGES[name](fine, coarse, cells, partition, metrics, arrays_, say, tolerance=tolerance,
-                     transient=transient)
+                     transient=transient, solved=solved)
     if others:
         metrics["comparison"] = compare_grids(metrics, coarse, others, partition)
     metrics.update(_file_facts(fine, coarse, cells, partition))
@@ -118,20 +121,35 @@ def _errors(metrics: dict, coarse: xr.Dataset, partition) -> dict:
     return out
 
 
-def _steady(fine, coarse, cells, partition, metrics, arrays_, say, **_):
-    say(f"whole-model steady check along x, y, z: fine model ({int(cells.active.sum()):,} active cells) "
-        "and coarse grid")
-    metrics.update(steady_check(fine, coarse))
+def _fine_solves(fine, coarse, cells, partition, chosen, transient, say) -> dict:
+    """The fine solves of the chosen checks, all at once (:mod:`upscale.checks.fine_solves`)."""
+    jobs = fine_jobs(chosen)
+    if not jobs:
+        return {}
+    named = {"steady": "steady flow along x, y, z", "diagonal": f"{len(PATCH_FLOWS)} diagonal flows",
+             "floor": "their floors on a homogeneous field", "transient": "the transient drainage"}
+    kinds = list(dict.fromkeys(kind for kind, _ in jobs))
+    say(f"fine model ({int(cells.active.sum()):,} active cells): {', '.join(named[k] for k in kinds)} "
+        f"({len(jobs)} solves, the longest part of the check)")
+    return fine_solutions(fine, coarse, cells, partition, chosen, transient)
 
 
-def _diagonal(fine, coarse, cells, partition, metrics, arrays_, say, **_):
-    say("diagonal flows, patch to patch: fine and coarse model, and their floors on a homogeneous field")
-    metrics["diagonal"] = diagonal_check(fine, coarse)
+def _steady(fine, coarse, cells, partition, metrics, arrays_, say, solved=None, **_):
+    say("whole-model steady check along x, y, z: coarse grid against the fine model")
+    metrics.update(steady_check(fine, coarse, fine_results=(solved or {}).get("steady")))
 
 
-def _transient(fine, coarse, cells, partition, metrics, arrays_, say, transient=None, **_):
-    say("transient drainage check, fine and coarse (the fine model's time steps take longest)")
-    metrics["transient"] = transient_check(fine, coarse, **(transient or {}))
+def _diagonal(fine, coarse, cells, partition, metrics, arrays_, say, solved=None, **_):
+    say("diagonal flows, patch to patch: coarse grid against the fine model, and their floors")
+    solved = solved or {}
+    metrics["diagonal"] = diagonal_check(fine, coarse, fine_rates=solved.get("diagonal"),
+                                         floor_rates=solved.get("floor"))
+
+
+def _transient(fine, coarse, cells, partition, metrics, arrays_, say, transient=None, solved=None, **_):
+    say("transient drainage check: coarse grid against the fine model")
+    metrics["transient"] = transient_check(fine, coarse, **(transient or {}),
+                                           fine_run=(solved or {}).get("transient"))
 
 
 def _blocks(fine, coarse, cells, partition, metrics, arrays_, say, tolerance=TOLERANCE, **_):

@@ -159,7 +159,7 @@ def _layer_shares(face_flux, z_start=None) -> list:
 
 
 def steady_check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = 1e-10,
-                 direct_limit: int = DIRECT_LIMIT) -> dict:
+                 direct_limit: int = DIRECT_LIMIT, fine_results: list | None = None) -> dict:
     """Compare whole-model steady flow of a fine field and its coarse grid.
 
     Parameters
@@ -170,6 +170,9 @@ def steady_check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = 1e-10,
         Relative residual of the solves.
     direct_limit : int
         Largest model solved directly.
+    fine_results : list of dict, optional
+        The fine model's :func:`fine_model_check` along x, y, z, already solved; None:
+        solved here.
 
     Returns
     -------
@@ -193,7 +196,7 @@ def steady_check(fine: xr.Dataset, coarse: xr.Dataset, tolerance: float = 1e-10,
     partition = coarse_partition(coarse, cells.shape)
     bulk = cells.bulk_volume
     result = {"global": {}, "layer_flow_share": {}, "pressure_rms": {}}
-    fine_results = fine_model_checks(cells, tolerance=tolerance, direct_limit=direct_limit)
+    fine_results = fine_results or fine_model_checks(cells, tolerance=tolerance, direct_limit=direct_limit)
     for axis, name in enumerate(AXES):
         f = fine_results[axis]
         c = coarse_model_check(coarse, axis, tolerance=tolerance, direct_limit=direct_limit)

@@ -185,7 +185,7 @@ def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face"
                     p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
                     viscosity: float = DEFAULT_VISCOSITY, well_radius: float = DEFAULT_WELL_RADIUS,
                     span=DEFAULT_SPAN, steps_per_doubling: int = 8, direct_limit: int = DIRECT_LIMIT,
-                    solve_tolerance: float = CHECK_SOLVE_TOLERANCE) -> dict:
+                    solve_tolerance: float = CHECK_SOLVE_TOLERANCE, fine_run: dict | None = None) -> dict:
     """Drain a fine field and its coarse grid the same way and compare.
 
     Both models use the same time grid (implicit Euler), so the comparison isolates the
@@ -207,6 +207,9 @@ def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face"
         Largest model solved directly (more unknowns: AMG-preconditioned CG).
     solve_tolerance : float
         Relative residual of each step's solve.
+    fine_run : dict, optional
+        The fine model's run with the same options, already made
+        (:func:`fine_transient_run`, e.g. on a worker process); None: run here.
 
     Returns
     -------
@@ -220,14 +223,11 @@ def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face"
         'pore_volume_relative_difference' ((coarse - fine) / fine), and the pressures,
         compressibility and viscosity used.
     """
-    cells, column, models = _models(fine, coarse, drainage, face, column, compressibility, viscosity,
-                                    steps_per_doubling, well_radius, span)
-    scale = time_scale(cells, drainage, face, column, compressibility, viscosity, models["fine"].drainage_factor)
-    if times is None:
-        times = time_grid(span[0] * scale["time_scale_days"], span[1] * scale["time_scale_days"],
-                          steps_per_doubling)
-    runs = {name: simulate(system, times, p_initial, p_drain, compressibility, viscosity,
-                           direct_limit=direct_limit, tolerance=solve_tolerance) for name, system in models.items()}
+    models, scale, times = _set_up(fine, coarse, drainage, face, column, times, compressibility, viscosity,
+                                   well_radius, span, steps_per_doubling)
+    runs = {name: fine_run if name == "fine" and fine_run is not None
+            else simulate(system, times, p_initial, p_drain, compressibility, viscosity, direct_limit=direct_limit,
+                          tolerance=solve_tolerance) for name, system in models.items()}
     return {
         "drainage": _drainage_setup(drainage, face, well_radius, models),
         "p_initial_bar": float(p_initial),
@@ -238,6 +238,39 @@ def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face"
         "times": [_number(t) for t in np.asarray(times, dtype=float)],
         **_comparison(runs, models),
     }
+
+
+def fine_transient_run(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face", face: str = "x-",
+                       column=None, times=None, p_initial: float = DEFAULT_P_INITIAL,
+                       p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
+                       viscosity: float = DEFAULT_VISCOSITY, well_radius: float = DEFAULT_WELL_RADIUS,
+                       span=DEFAULT_SPAN, steps_per_doubling: int = 8, direct_limit: int = DIRECT_LIMIT,
+                       solve_tolerance: float = CHECK_SOLVE_TOLERANCE) -> dict:
+    """The fine model's run of :func:`transient_check` alone, with the same arguments.
+
+    Returns
+    -------
+    dict
+        That of :func:`upscale.core.transient.simulate`: pass it to :func:`transient_check`
+        as ``fine_run``.
+    """
+    models, _, times = _set_up(fine, coarse, drainage, face, column, times, compressibility, viscosity,
+                               well_radius, span, steps_per_doubling)
+    return simulate(models["fine"], times, p_initial, p_drain, compressibility, viscosity,
+                    direct_limit=direct_limit, tolerance=solve_tolerance)
+
+
+def _set_up(fine: xr.Dataset, coarse: xr.Dataset, drainage: str, face: str, column, times, compressibility: float,
+            viscosity: float, well_radius: float, span, steps_per_doubling: int):
+    """Both models (:func:`_models`), the fine field's time scale and the step end times
+    (``times``, else the default grid over ``span`` time scales)."""
+    cells, column, models = _models(fine, coarse, drainage, face, column, compressibility, viscosity,
+                                    steps_per_doubling, well_radius, span)
+    scale = time_scale(cells, drainage, face, column, compressibility, viscosity, models["fine"].drainage_factor)
+    if times is None:
+        times = time_grid(span[0] * scale["time_scale_days"], span[1] * scale["time_scale_days"],
+                          steps_per_doubling)
+    return models, scale, times
 
 
 def _models(fine: xr.Dataset, coarse: xr.Dataset, drainage: str, face: str, column, compressibility: float,

@@ -7,11 +7,12 @@ import sys
 import time
 from pathlib import Path
 
+from .._runtime import hold_to_budget
 from ..checks.blocks import TOLERANCE
 from ..checks.run import check_models, parse_checks
 from ..checks.steady import BYTES_PER_CELL
 from ..errors import InputError
-from ..io.reading import check_readable, open_field
+from ..io.reading import grid_sizes, open_field
 from ..io.sector import block_window, coarse_sector, describe, parse_window
 from ..report.check_report import build_report
 from ..report.text import format_check
@@ -28,11 +29,13 @@ def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERA
     ``window``: a sector ``X0:X1,Y0:Y1,Z0:Z1`` (fine indices on whole coarse blocks) checked
     as a model of its own, read alone from the fine file; ``memory``: the budget, bytes
     (default half the memory available): a whole model that needs more is refused before
-    any work, with a hint to check a sector; ``pinch_connections``, ``pinch_thickness``: the
-    fine model's pinch-out settings (None: as the coarse grid was made); ``sections``: more
-    (title, HTML) sections for the report (the demo's two-phase curves).
+    any work, with a hint to check a sector, and the fine checks start no more worker
+    processes than it holds; ``pinch_connections``, ``pinch_thickness``: the fine model's
+    pinch-out settings (None: as the coarse grid was made); ``sections``: more (title, HTML)
+    sections for the report (the demo's two-phase curves).
     """
     parse_checks(checks)  # refused before the files are read
+    hold_to_budget(memory)  # the fine checks' worker processes are counted within it
     coarse = open_field(coarse_path)
     others = {Path(path).name: open_field(path) for path in compare}
     if window is None:
@@ -57,11 +60,7 @@ def run_check(fine_path, coarse_path, report_dir=None, tolerance: float = TOLERA
 
 def _refuse_too_big(path, memory: int) -> None:
     """Refuse a fine model whose checks need more than ``memory`` bytes (read from the header)."""
-    import netCDF4
-
-    with netCDF4.Dataset(check_readable(path)) as nc:
-        shape = [len(nc.dimensions[d]) for d in ("x", "y", "z") if d in nc.dimensions]
-    cells = math.prod(shape)
+    cells = math.prod(grid_sizes(path).values())
     need = PROCESS_BYTES + cells * BYTES_PER_CELL
     if need > memory:
         raise InputError(f"{path}: checking the whole model of {cells:,} cells needs about {need / 2 ** 30:.1f} GB "

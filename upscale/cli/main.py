@@ -27,7 +27,8 @@ EXAMPLES = {
         upscale coarsen big.nc -o coarse.nc --ratio 5 5 5 --scheduler tcp://127.0.0.1:8786""",
     "inspect": """\
         upscale inspect fields/demo.nc
-        upscale inspect fine.nc --pinch-thickness 0.05 --json""",
+        upscale inspect fine.nc --pinch-thickness 0.05 --json
+        upscale inspect big.nc --memory 2GB --json    # any size: read in slabs that fit 2 GB""",
     "make-field": """\
         upscale make-field lognormal -o fields/random.nc --shape 60 220 85 --sigma 2 --correlation 8 8 2 --seed 1
         upscale make-field layered -o fields/layers.nc --thickness 2 1 3 --permeability 100 1 500
@@ -158,6 +159,8 @@ def _inspect_options(p: argparse.ArgumentParser) -> None:
     """Options of ``upscale inspect``."""
     p.add_argument("file", help="field or coarse grid (NetCDF)")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")
+    p.add_argument("--memory", metavar="SIZE", help="memory budget, e.g. 2GB (default: half the memory "
+                   "available); the field is read in slabs along x that fit it, in two passes or three")
     _add_pinch_outs(p, "inspect")
 
 
@@ -405,16 +408,27 @@ def _memory_plan(args):
 
 def _inspect(args) -> int:
     """``upscale inspect``: the field summary as text or JSON."""
-    from ..checks.summary import field_summary
+    from ..checks.summary import READ_CACHE_BYTES, field_summary, summary_slab
+    from ..core.grid import AXES
     from ..io.pinch_outs import with_pinch_outs
-    from ..io.reading import open_field
+    from ..io.reading import grid_sizes, limit_chunk_cache, open_field
     from ..io.schema import pinch_connections
     from ..report.text import format_summary
+    from ..scale.memory import PROCESS_BYTES
 
     pinch = _pinch_options(args)
-    field = open_field(args.file)
+    plan = _memory_plan(args)
+    sizes = grid_sizes(args.file)
+    slab = summary_slab([sizes.get(d, 1) for d in AXES], plan.memory, PROCESS_BYTES)  # before any work
+    limit_chunk_cache(READ_CACHE_BYTES)
+    field = open_field(args.file, chunks={"x": slab, "y": -1, "z": -1})
     recorded = pinch_connections(field) if pinch["pinch_connections"] is None else pinch["pinch_connections"]
-    summary = field_summary(with_pinch_outs(field, recorded, pinch["pinch_thickness"]))
+    passes = []  # the field is checked, then summarised, one slab (chunk) at a time
+    summary = field_summary(with_pinch_outs(field, recorded, pinch["pinch_thickness"]), passes=passes)
+    if not args.quiet:
+        count = f"{passes[0]} pass{'' if passes[0] == 1 else 'es'}"
+        print(f"upscale inspect: {count} over {passes[1]} slab(s) of at most {slab} x planes "
+              f"(--memory {plan.memory / 2 ** 20:.0f} MB)", file=sys.stderr)
     print(json.dumps(summary, indent=2) if args.json else format_summary(summary))
     return 0
 

@@ -27,7 +27,7 @@ from .local_global import (
     iterate,
 )
 from .partition import Partition
-from .static import STATIC_METHODS, block_length, cardwell_parsons, divide_or_zero, static_average
+from .static import STATIC_METHODS, block_length, block_volumes, cardwell_parsons, divide_or_zero, static_average
 from .two_point import cell_geometry, half_transmissibility
 from .units import unit_system
 
@@ -272,14 +272,15 @@ def block_variables(cells: GridArrays, partition: Partition, blocks: tuple[slice
                   only=tuple(np.arange(b.start, b.stop) for b in blocks))
     flow, faces = (flow, None) if flow is not None else _local_solves(cells, partition, recipe, solves)
     volumes = _volumes(core, core_partition)
-    k = _effective_tensors(core, core_partition, recipe, None if flow is None else flow.tensor[blocks])
-    k = np.where(volumes["active"][..., None, None], k, 0.0)
+    k_flow = core.flow_permeability()
+    k = _effective_tensors(core, core_partition, recipe, None if flow is None else flow.tensor[blocks], k_flow)
+    k[~volumes["active"]] = 0.0
     out = _stored_values(core, core_partition, recipe, k, volumes)
     if flow is not None:
         out["solve_residual"] = flow.residual[blocks]
         if recipe.bc == "linear":
             out["tensor_asymmetry"] = flow.asymmetry[blocks]
-    out.update(_bounds_and_halves(core, core_partition, recipe, k, out["dz"]))
+    out.update(_bounds_and_halves(core, core_partition, recipe, k, out["dz"], k_flow, volumes["bulk"]))
     if faces is not None:
         out.update(_faces_of_the_box(faces, blocks, partition, out.get("solve_residual")))
     return out
@@ -299,16 +300,19 @@ def _local_solves(cells: GridArrays, partition: Partition, recipe: Recipe, solve
     return flow, faces
 
 
-def _effective_tensors(core: GridArrays, core_partition: Partition, recipe: Recipe, flow_tensor) -> np.ndarray:
-    """Effective tensors (NX, NY, NZ, 3, 3), mD: flow-based where the recipe says flow, the
-    static average elsewhere on the diagonal; diagonal only unless a full tensor is kept."""
-    effective = np.zeros(core_partition.shape + (3, 3)) if flow_tensor is None else flow_tensor.copy()
-    k_flow = core.flow_permeability()
-    weight = core.bulk_volume * core.active
+def _effective_tensors(core: GridArrays, core_partition: Partition, recipe: Recipe, flow_tensor,
+                       k_flow: tuple[np.ndarray, np.ndarray, np.ndarray]) -> np.ndarray:
+    """Effective tensors (NX, NY, NZ, 3, 3), mD, a new array: flow-based where the recipe
+    says flow, the static average of the flow permeability ``k_flow`` elsewhere on the
+    diagonal; diagonal only unless a full tensor is kept."""
+    effective = np.zeros(core_partition.shape + (3, 3)) if flow_tensor is None else flow_tensor * (
+        1.0 if recipe.full else np.eye(3))
+    weight = None
     for axis, name in enumerate(recipe.methods):
         if name != "flow":
+            weight = core.bulk_volume * core.active if weight is None else weight
             effective[..., axis, axis] = static_average(k_flow[axis], weight, core_partition, name, recipe.omega)
-    return effective if recipe.full else effective * np.eye(3)
+    return effective
 
 
 def _stored_values(core: GridArrays, core_partition: Partition, recipe: Recipe, k: np.ndarray,
@@ -316,7 +320,7 @@ def _stored_values(core: GridArrays, core_partition: Partition, recipe: Recipe, 
     """The permeabilities as stored (horizontal components net: divided by ntg), the
     coarse thickness and the volumes."""
     net = np.where(HORIZONTAL, divide_or_zero(k, volumes["ntg"][..., None, None]), k)
-    out = dict(dz=block_length(core_partition, core.dx, core.dy, core.dz, 2), kx=net[..., 0, 0],
+    out = dict(dz=block_length(core_partition, core.dx, core.dy, core.dz, 2, volumes["bulk"]), kx=net[..., 0, 0],
                ky=net[..., 1, 1], kz=net[..., 2, 2], porosity=volumes["porosity"], ntg=volumes["ntg"],
                pore_volume=volumes["pore"], bulk_volume=volumes["bulk"], active=volumes["active"].astype(np.int8))
     if recipe.full:
@@ -325,18 +329,18 @@ def _stored_values(core: GridArrays, core_partition: Partition, recipe: Recipe, 
 
 
 def _bounds_and_halves(core: GridArrays, core_partition: Partition, recipe: Recipe, k: np.ndarray,
-                       dz: np.ndarray) -> dict[str, np.ndarray]:
-    """Per axis the Cardwell-Parsons bounds (mD) and the coarse half-cell
-    transmissibilities of the effective permeability, in the recipe's units."""
+                       dz: np.ndarray, k_flow, bulk: np.ndarray) -> dict[str, np.ndarray]:
+    """Per axis the Cardwell-Parsons bounds (mD) of the flow permeability ``k_flow`` and the
+    coarse half-cell transmissibilities of the effective permeability, in the recipe's
+    units; ``bulk`` the blocks' bulk volumes (m3)."""
     _, constant, to_length = unit_system(recipe.units)
     dx = np.add.reduceat(core.dx, core_partition.edges[0][:-1])
     dy = np.add.reduceat(core.dy, core_partition.edges[1][:-1])
     volume, lengths = cell_geometry(dx, dy, dz)
-    k_flow = core.flow_permeability()
     out = {}
     for axis, name in enumerate(AXES):
         lower, upper = cardwell_parsons(k_flow[axis], core.dx, core.dy, core.dz, core_partition, axis,
-                                        core.pinch_connections)
+                                        core.pinch_connections, bulk)
         out[f"k{name}_lower_bound"], out[f"k{name}_upper_bound"] = lower, upper
         # T scales with length (A / L): mD*m -> mD*ft multiplies by the metres-to-feet factor.
         out[f"half_{name}"] = constant * to_length * half_transmissibility(k[..., axis, axis], volume, lengths[axis])
@@ -383,10 +387,7 @@ HORIZONTAL = np.array([[1, 1, 0], [1, 1, 0], [0, 0, 0]], dtype=bool)
 
 def _volumes(cells: GridArrays, partition: Partition) -> dict[str, np.ndarray]:
     """Coarse bulk and pore volume (m3), net-to-gross and porosity conserving pore volume."""
-    bulk = partition.block_sum(cells.bulk_volume)
-    pore = partition.block_sum(cells.pore_volume)
-    net = partition.block_sum(cells.ntg * cells.bulk_volume * cells.active)
-    ntg = divide_or_zero(net, bulk)
-    porosity = divide_or_zero(pore, net)
-    active = partition.block_sum(cells.active) > 0
-    return {"bulk": bulk, "pore": pore, "ntg": ntg, "porosity": porosity, "active": active}
+    sums = block_volumes(cells.dx, cells.dy, cells.dz, partition, cells.porosity, cells.ntg, cells.active)
+    bulk, pore, net = sums["bulk"], sums["pore"], sums["net"]
+    return {"bulk": bulk, "pore": pore, "ntg": divide_or_zero(net, bulk), "porosity": divide_or_zero(pore, net),
+            "active": sums["active"] > 0}

@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 import xarray as xr
 
+from ..core.grid import AXES
 from ..errors import InputError
 from .validation import validate
 
@@ -169,6 +170,41 @@ def check_readable(path: str | os.PathLike) -> Path:
         raise InputError(f"{path}: is a folder, expected a NetCDF file")
     _probe_header(path)
     return path
+
+
+def grid_sizes(path: str | os.PathLike) -> dict[str, int]:
+    """The lengths of the dimensions x, y, z (those present) from a file's header alone.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        A NetCDF file (refused as by :func:`check_readable`).
+
+    Returns
+    -------
+    dict
+        Dimension name -> length.
+    """
+    import netCDF4
+
+    with netCDF4.Dataset(check_readable(path)) as nc:
+        return {d: len(nc.dimensions[d]) for d in AXES if d in nc.dimensions}
+
+
+def limit_chunk_cache(size: int) -> None:
+    """Hold at most ``size`` bytes of decompressed file chunks per variable of the files
+    opened from now on, in this process (the NetCDF library's default, 64 MB a variable,
+    keeps whole variables of a field read slab by slab: about 400 MB for eight).
+
+    Parameters
+    ----------
+    size : int
+        Bytes per variable.
+    """
+    import netCDF4
+
+    _, elements, preemption = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(int(size), elements, preemption)
 
 
 def open_field(path: str | os.PathLike, chunks=None, window=None) -> xr.Dataset:

@@ -65,11 +65,15 @@ def format_summary(summary: dict) -> str:
             for name, entry in summary["values"].items()]
     lines += _table(["variable", "units", *STATISTICS], rows)
 
-    lines += ["", "Heterogeneity of flow permeability (CV, Dykstra-Parsons weighted by bulk volume; "
-                  "Lorenz: h = dz, storage porosity*ntg)"]
+    lines += ["", "Heterogeneity of flow permeability (each cell weighted by its bulk volume; Lorenz: "
+                  "storage porosity*ntg)"]
     rows = [[axis, entry.get("permeability", "")] + [_number(entry[key]) for key, _ in HETEROGENEITY]
             for axis, entry in summary["heterogeneity"].items()]
     lines += _table(["direction", "k", *(label for _, label in HETEROGENEITY)], rows)
+    bound = max((entry.get("lorenz_bound", 0.0) for entry in summary["heterogeneity"].values()), default=0.0)
+    if bound > 0:
+        lines.append(f"(Lorenz from logarithmic bins of k / porosity: the sorted cells' value is higher by at most "
+                     f"{bound:.1g})")
 
     if summary.get("transmissibility"):
         lines += ["", "Face values"]

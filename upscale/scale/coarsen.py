@@ -11,7 +11,7 @@ from ..errors import InputError
 from ..io.coarse_grid import assemble, warn_flagged
 from ..io.pinch_outs import with_pinch_outs
 from ..io.schema import arrays
-from ..io.validation import validate
+from ..io.validation import is_lazy, validate
 from .boxes import lazy_block_variables
 from .global_boxes import global_in_boxes
 
@@ -114,8 +114,3 @@ def global_attributes(options, report) -> dict:
             "global_faces_solved": " ".join(map(str, report.faces_solved)),
             "global_faces_kept_local": " ".join(str(sum(f)) for f in report.fallback),
             "global_rate_change": " ".join(f"{c:.3g}" for c in report.rate_change)}
-
-
-def is_lazy(ds: xr.Dataset) -> bool:
-    """Does the dataset hold dask (lazy) arrays?"""
-    return any(v.chunks is not None for v in ds.variables.values())

@@ -143,12 +143,9 @@ class MemoryPlan:
         """
         if self.workers or self.cluster:
             return True
-        import netCDF4
+        from ..io.reading import grid_sizes
 
-        from ..io.reading import check_readable
-
-        with netCDF4.Dataset(check_readable(path)) as nc:
-            cells = math.prod(len(nc.dimensions[d]) for d in AXES if d in nc.dimensions)
+        cells = math.prod(grid_sizes(path).values())
         per_cell = IN_MEMORY_BYTES_PER_CELL["flow" if ("flow" in str(method) or multipliers) else "static"]
         return PROCESS_BYTES + cells * per_cell > self.memory
 

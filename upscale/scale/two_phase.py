@@ -19,9 +19,8 @@ from ..io.curve_file import curve_dataset
 from ..io.pinch_outs import with_pinch_outs
 from ..io.rock_table import RockTable, code_variable, facies_rocks, read_rock_table
 from ..io.schema import arrays
-from ..io.validation import validate
+from ..io.validation import is_lazy, validate
 from .boxes import lazy_block_variables
-from .coarsen import is_lazy
 
 #: most saturation points per curve
 MOST_POINTS = 200
