@@ -37,7 +37,7 @@ LIBRARIES = {
     "core": NUMERIC,
     "io": NUMERIC | {"xarray", "netCDF4", "dask"},  # dask: lazily read fields, checked slab by slab
     "scale": NUMERIC | {"xarray", "netCDF4", "dask", "distributed", "cloudpickle"},
-    "checks": NUMERIC | {"xarray"},
+    "checks": NUMERIC | {"xarray", "threadpoolctl"},  # threadpoolctl: one BLAS thread per fine solve
     "report": NUMERIC | {"xarray", "matplotlib"},
     "gallery": NUMERIC | {"xarray", "dask"},
     "cli": None,  # anything

@@ -25,6 +25,8 @@ an interrupt while the heavy libraries load ends cleanly.
 
 from importlib import import_module
 
+from . import _runtime  # noqa: F401  (first: numba's threading layer must be fork-safe, see fork_safe_threads)
+
 from .about import tool_version
 from .errors import InputError
 

@@ -13,6 +13,26 @@ import threading
 from contextlib import contextmanager, nullcontext
 
 
+def fork_safe_threads() -> None:
+    """Have numba's parallel kernels use a threading layer that survives a fork.
+
+    The worker processes of :func:`forked_map` are forked from a process that has run
+    parallel kernels; with the GNU OpenMP layer a forked worker that runs one in turn is
+    terminated ("fork() called from a process already using GNU OpenMP"), and its pool
+    waits for it for ever. numba's "forksafe" choice takes TBB, Intel OpenMP or its own
+    work queue instead. A layer the user chose (NUMBA_THREADING_LAYER) is kept.
+    """
+    if "NUMBA_THREADING_LAYER" in os.environ:
+        return
+    os.environ["NUMBA_THREADING_LAYER"] = "forksafe"  # read when numba is imported ...
+    numba = sys.modules.get("numba")
+    if numba is not None:  # ... or set on its configuration if it already is
+        numba.config.THREADING_LAYER = "forksafe"
+
+
+fork_safe_threads()
+
+
 @contextmanager
 def interrupt_after(until: str = "the file being written is closed"):
     """Hold Ctrl-C (SIGINT) back until the block has finished, then raise KeyboardInterrupt;

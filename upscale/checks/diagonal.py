@@ -26,7 +26,7 @@ from ..core.two_point import transmissibilities
 from ..io.coarse_file import coarse_partition, coarse_two_point
 from ..io.schema import arrays
 from ..io.validation import validate
-from .steady import axis_processes
+from .steady import axis_processes, one_blas_thread
 
 
 def patch_rate(face_t, half: np.ndarray, masks, flow: PatchFlow, dx, dy, dz, tolerance: float,
@@ -104,7 +104,8 @@ def fine_patch_rates(cells: GridArrays, partition: Partition, tolerance: float =
 def _fine_flow(shared, flow: PatchFlow) -> float:
     """One diagonal flow through the fine grid (in a forked worker, on the data it inherited)."""
     cells, partition, homogeneous, tolerance, direct_limit = shared
-    return fine_patch_rate(cells, partition, flow, homogeneous, tolerance, direct_limit)
+    with one_blas_thread():
+        return fine_patch_rate(cells, partition, flow, homogeneous, tolerance, direct_limit)
 
 
 def coarse_patch_rates(coarse: xr.Dataset, partition: Partition, tolerance: float = 1e-10) -> dict[str, float]:

@@ -21,7 +21,7 @@ from ..core.partition import Partition
 from ..core.patch_flows import PATCH_FLOWS
 from ..core.pressure import DIRECT_LIMIT, fine_model_check
 from .diagonal import fine_patch_rate
-from .steady import axis_processes
+from .steady import axis_processes, one_blas_thread
 from .transient import fine_transient_run
 
 
@@ -94,6 +94,12 @@ def fine_solutions(fine: xr.Dataset, coarse: xr.Dataset, cells: GridArrays, part
 
 def _solve(shared, job):
     """One fine solve (in a forked worker, on the data it inherited)."""
+    with one_blas_thread():
+        return _solve_job(shared, job)
+
+
+def _solve_job(shared, job):
+    """The solve of one job of :func:`fine_jobs`."""
     fine, coarse, cells, partition, transient, tolerance, direct_limit = shared
     kind, key = job
     if kind == "transient":

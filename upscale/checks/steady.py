@@ -11,9 +11,11 @@ from __future__ import annotations
 import math
 import multiprocessing
 import os
+from contextlib import contextmanager
 
 import numpy as np
 import xarray as xr
+from threadpoolctl import threadpool_limits
 
 from .._runtime import available_memory, forked_map
 from ..core.grid import AXES, GridArrays, axis_index
@@ -24,6 +26,17 @@ from ..io.validation import validate
 
 #: peak memory of one axis of the fine check per cell, bytes
 BYTES_PER_CELL = 1300
+
+
+@contextmanager
+def one_blas_thread():
+    """Hold the BLAS libraries to one thread while a fine solve runs.
+
+    The solves are sparse; their few dense products gain nothing from more threads, and
+    the idle BLAS threads, waiting busily, take the cores from the other worker processes.
+    """
+    with threadpool_limits(limits=1, user_api="blas"):
+        yield
 
 
 def worker_count(cells: int = 0) -> int:
@@ -106,7 +119,8 @@ def fine_model_checks(cells: GridArrays, tolerance: float = 1e-10, direct_limit:
 def _fine_axis(shared, axis: int) -> dict:
     """One axis of the fine check (in a forked worker, on the field it inherited)."""
     cells, tolerance, direct_limit = shared
-    return fine_model_check(cells, axis, tolerance=tolerance, direct_limit=direct_limit)
+    with one_blas_thread():
+        return fine_model_check(cells, axis, tolerance=tolerance, direct_limit=direct_limit)
 
 
 def coarse_model_check(coarse: xr.Dataset, axis, tolerance: float = 1e-10,
