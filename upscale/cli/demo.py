@@ -86,7 +86,7 @@ def run_demo(folder: str | Path = ".", quiet: bool = False) -> dict[str, Path]:
                        + [_two_phase_summary(curves[limit], paths, limit) for limit in LIMITS])
     atomic_write(paths["summary"], lambda tmp: Path(tmp).write_text(text + "\n"))
     print(f"coarse grids and two-phase curves written after {time.perf_counter() - started:.0f} s; now the "
-          "whole-model steady and transient checks of the fine and coarse models (a few minutes)", flush=True)
+          "whole-model steady and transient checks of the fine and coarse models (about a minute on 2 cores)", flush=True)
     run_check(paths["fine"], paths["coarse"], report_dir=paths["report"].parent, transient=DEMO_TRANSIENT,
               quiet=quiet, compare=[paths["sealed"]], sections=sections)
     print(f"upscale demo finished in {time.perf_counter() - started:.1f} s")
