@@ -78,34 +78,40 @@ def _relative(a: float, b: float) -> float | None:
     return value if math.isfinite(value) else None
 
 
-def fine_patch_rate(cells: GridArrays, partition: Partition, flow: PatchFlow, homogeneous: bool = False,
-                    tolerance: float = 1e-10, direct_limit: int = DIRECT_LIMIT) -> float:
-    """Rate of one diagonal flow through the fine field (or, ``homogeneous``, through the
-    floor's homogeneous field of the same grid), mD*m per unit drop."""
+def fine_two_point(cells: GridArrays, partition: Partition, homogeneous: bool = False) -> tuple[list, np.ndarray]:
+    """(interior-face transmissibilities per axis, half-cell transmissibilities (3, nx, ny, nz)),
+    mD*m, of the fine field or, ``homogeneous``, of the floor's homogeneous field of the same grid."""
     if homogeneous:
         (_, faces, half), _ = _homogeneous_models(cells, partition)
-    else:
-        half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz,
-                                         cells.pinch_connections)
+        return faces, half
+    half, faces = transmissibilities(cells.flow_permeability(), cells.dx, cells.dy, cells.dz, cells.pinch_connections)
+    return faces, half
+
+
+def fine_patch_rate(cells: GridArrays, partition: Partition, flow: PatchFlow, model, tolerance: float = 1e-10,
+                    direct_limit: int = DIRECT_LIMIT) -> float:
+    """Rate of one diagonal flow through the fine ``model`` (:func:`fine_two_point`), mD*m per unit drop."""
+    faces, half = model
     return patch_rate(faces, half[flow.axis], patch_masks(partition, flow)[0], flow, cells.dx, cells.dy, cells.dz,
                       tolerance, direct_limit)
 
 
 def fine_patch_rates(cells: GridArrays, partition: Partition, tolerance: float = 1e-10,
                      direct_limit: int = DIRECT_LIMIT, homogeneous: bool = False) -> dict[str, float]:
-    """:func:`fine_patch_rate` of every diagonal flow, by name. A model too large for the
-    direct solver runs its flows on forked worker processes, like the steady check."""
+    """:func:`fine_patch_rate` of every diagonal flow through the field (or, ``homogeneous``,
+    the floor's homogeneous field), by name. A model too large for the direct solver runs
+    its flows on forked worker processes, like the steady check."""
+    model = fine_two_point(cells, partition, homogeneous)
     processes = axis_processes(math.prod(cells.shape), direct_limit)
-    rates = forked_map(_fine_flow, (cells, partition, homogeneous, tolerance, direct_limit), list(PATCH_FLOWS),
-                       processes)
+    rates = forked_map(_fine_flow, (cells, partition, model, tolerance, direct_limit), list(PATCH_FLOWS), processes)
     return {flow.name: rate for flow, rate in zip(PATCH_FLOWS, rates)}
 
 
 def _fine_flow(shared, flow: PatchFlow) -> float:
     """One diagonal flow through the fine grid (in a forked worker, on the data it inherited)."""
-    cells, partition, homogeneous, tolerance, direct_limit = shared
+    cells, partition, model, tolerance, direct_limit = shared
     with one_blas_thread():
-        return fine_patch_rate(cells, partition, flow, homogeneous, tolerance, direct_limit)
+        return fine_patch_rate(cells, partition, flow, model, tolerance, direct_limit)
 
 
 def coarse_patch_rates(coarse: xr.Dataset, partition: Partition, tolerance: float = 1e-10) -> dict[str, float]:

@@ -20,7 +20,7 @@ from ..core.grid import GridArrays
 from ..core.partition import Partition
 from ..core.patch_flows import PATCH_FLOWS
 from ..core.pressure import DIRECT_LIMIT, fine_model_check
-from .diagonal import fine_patch_rate
+from .diagonal import fine_patch_rate, fine_two_point
 from .steady import axis_processes, one_blas_thread
 from .transient import fine_transient_run
 
@@ -36,14 +36,14 @@ def fine_jobs(chosen) -> list[tuple[str, object]]:
     Returns
     -------
     list of (str, object)
-        ("transient", None); ("steady", axis) for axis 0, 1, 2; ("diagonal", flow name) and
-        ("floor", flow name) for every diagonal flow.
+        ("transient", None); ("steady", axis) for axis 0, 1, 2; ("diagonal", flow) and
+        ("floor", flow) for every diagonal flow (:data:`upscale.core.patch_flows.PATCH_FLOWS`).
     """
     jobs = [("transient", None)] if "transient" in chosen else []
     if "steady" in chosen:
         jobs += [("steady", axis) for axis in range(3)]
     if "diagonal" in chosen:
-        jobs += [(kind, flow.name) for kind in ("diagonal", "floor") for flow in PATCH_FLOWS]
+        jobs += [(kind, flow) for kind in ("diagonal", "floor") for flow in PATCH_FLOWS]
     return jobs
 
 
@@ -79,7 +79,10 @@ def fine_solutions(fine: xr.Dataset, coarse: xr.Dataset, cells: GridArrays, part
     """
     jobs = fine_jobs(chosen)
     processes = axis_processes(math.prod(cells.shape), direct_limit)
-    shared = (fine, coarse, cells, partition, transient or {}, tolerance, direct_limit)
+    # The two-point models of the diagonal flows and their floors, made once and inherited.
+    models = ({kind: fine_two_point(cells, partition, kind == "floor") for kind in ("diagonal", "floor")}
+              if "diagonal" in chosen else {})
+    shared = (fine, coarse, cells, partition, models, transient or {}, tolerance, direct_limit)
     results = forked_map(_solve, shared, jobs, processes)
     out: dict = {}
     for (kind, key), result in zip(jobs, results):
@@ -88,7 +91,7 @@ def fine_solutions(fine: xr.Dataset, coarse: xr.Dataset, cells: GridArrays, part
         elif kind == "steady":
             out.setdefault(kind, []).append(result)
         else:
-            out.setdefault(kind, {})[key] = result
+            out.setdefault(kind, {})[key.name] = result
     return out
 
 
@@ -100,11 +103,10 @@ def _solve(shared, job):
 
 def _solve_job(shared, job):
     """The solve of one job of :func:`fine_jobs`."""
-    fine, coarse, cells, partition, transient, tolerance, direct_limit = shared
+    fine, coarse, cells, partition, models, transient, tolerance, direct_limit = shared
     kind, key = job
     if kind == "transient":
         return fine_transient_run(fine, coarse, **transient)
     if kind == "steady":
         return fine_model_check(cells, key, tolerance=tolerance, direct_limit=direct_limit)
-    flow = next(f for f in PATCH_FLOWS if f.name == key)
-    return fine_patch_rate(cells, partition, flow, kind == "floor", tolerance, direct_limit)
+    return fine_patch_rate(cells, partition, key, models[kind], tolerance, direct_limit)

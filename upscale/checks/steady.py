@@ -11,7 +11,6 @@ from __future__ import annotations
 import math
 import multiprocessing
 import os
-from contextlib import contextmanager
 
 import numpy as np
 import xarray as xr
@@ -28,15 +27,13 @@ from ..io.validation import validate
 BYTES_PER_CELL = 1300
 
 
-@contextmanager
-def one_blas_thread():
-    """Hold the BLAS libraries to one thread while a fine solve runs.
+def one_blas_thread() -> threadpool_limits:
+    """A context that holds the BLAS libraries to one thread while a fine solve runs.
 
     The solves are sparse; their few dense products gain nothing from more threads, and
     the idle BLAS threads, waiting busily, take the cores from the other worker processes.
     """
-    with threadpool_limits(limits=1, user_api="blas"):
-        yield
+    return threadpool_limits(limits=1, user_api="blas")
 
 
 def worker_count(cells: int = 0) -> int:
