@@ -31,7 +31,8 @@ import scipy.sparse.linalg as spla
 from scipy.sparse.csgraph import connected_components
 
 from .grid import AXES, GridArrays, axis_index
-from .multigrid import VCycle, scaled_near_null
+from .conjugate_gradients import conjugate_gradients
+from .multigrid import MultigridCycle, scaled_near_null
 from .two_point import check_faces, transmissibilities
 
 log = logging.getLogger(__name__)
@@ -215,7 +216,7 @@ def solve_pressure(A, b, tolerance: float = 1e-10, direct_limit: int = DIRECT_LI
     is scaled symmetrically to unit diagonal, D^-1/2 A D^-1/2, which evens out permeability
     contrasts, then solved by sparse LU (SuperLU) when it has at most ``direct_limit``
     unknowns, otherwise by conjugate gradients preconditioned with a smoothed-aggregation
-    V-cycle (:class:`upscale.core.multigrid.VCycle`). Either way the true relative residual
+    multigrid cycle (:class:`upscale.core.multigrid.MultigridCycle`). Either way the true relative residual
     ||b - A p|| / ||b|| of the unscaled system is computed; the direct solve is refined and
     the iterative one restarted with a tighter tolerance (a few times at most) until it is
     <= ``tolerance``.
@@ -351,22 +352,18 @@ def refined_direct(A, lu, scale: np.ndarray, b: np.ndarray, tolerance: float, re
 
 
 def _amg_cg(A, scaled, scale, b, tolerance, restarts: int = 6, maxiter: int = 1000):
-    """Solve ``A p = b`` by CG on the scaled system with a V-cycle preconditioner, restarted
+    """Solve ``A p = b`` by CG on the scaled system with a multigrid-cycle preconditioner, restarted
     until the unscaled relative residual is at most ``tolerance``; returns (p, CG iterations)."""
-    M = VCycle(scaled, near_null=scaled_near_null(scale))
+    M = MultigridCycle(scaled, near_null=scaled_near_null(scale))
     bs = scale * b
     y = np.zeros_like(bs)
     iterations = 0
     rtol = tolerance
-
-    def count(_):
-        nonlocal iterations
-        iterations += 1
-
     for _ in range(restarts):
         # The scaled and unscaled residual norms differ; restart from where we are with a
         # tolerance tightened by the shortfall until the true residual is small enough.
-        y, _status = spla.cg(scaled, bs, x0=y, rtol=rtol, atol=0.0, maxiter=maxiter, M=M, callback=count)
+        y, steps = conjugate_gradients(scaled, bs, y, M, rtol, maxiter)
+        iterations += steps
         reached = _relative_residual(A, b, scale * y)
         if reached <= tolerance:
             break

@@ -49,11 +49,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
-import scipy.sparse.linalg as spla
 from scipy.sparse.csgraph import connected_components
 
 from ..errors import InputError
 from .grid import AXES, GridArrays
+from .conjugate_gradients import conjugate_gradients
 from .multigrid import ShiftedCycles
 from .pressure import DIRECT_LIMIT, refined_direct, symmetric_lu, unit_diagonal
 from .two_point import check_faces, transmissibilities
@@ -498,7 +498,7 @@ def projected_guess(A, b: np.ndarray, vectors) -> np.ndarray:
 class _StepSolver:
     """Solves (diag(storage / dt) + K) u = rhs for each step dt, the last few steps' solvers
     kept. Small systems: sparse LU of the matrix scaled to unit diagonal, one per distinct
-    dt. Large ones: CG preconditioned by V-cycles that share one set-up for every dt
+    dt. Large ones: CG preconditioned by multigrid cycles that share one set-up for every dt
     (:class:`upscale.core.multigrid.ShiftedCycles`), started from :func:`projected_guess`
     over the last pressure and the last ``REMEMBER`` solutions."""
 
@@ -518,7 +518,7 @@ class _StepSolver:
         self.history: list[np.ndarray] = []  # the last solutions, newest first
 
     def _prepare(self, dt: float):
-        """The matrix of step dt and its solver: (LU, scale) or (V-cycle, None); cached."""
+        """The matrix of step dt and its solver: (LU, scale) or (multigrid cycle, None); cached."""
         for known, entry in self.cache.items():
             if abs(known - dt) <= 1e-12 * dt:
                 self.cache.move_to_end(known)
@@ -562,14 +562,8 @@ class _StepSolver:
 
     def _iterate(self, A, cycle, rhs, u) -> np.ndarray:
         """CG on A x = rhs from the projected guess, to the relative residual tolerance."""
-        count = 0
-
-        def counter(_):
-            nonlocal count
-            count += 1
-
-        x, _ = spla.cg(A, rhs, x0=projected_guess(A, rhs, [u, *self.history]), rtol=self.tolerance,
-                       atol=0.0, maxiter=1000, M=cycle, callback=counter)
+        x, count = conjugate_gradients(A, rhs, projected_guess(A, rhs, [u, *self.history]), cycle, self.tolerance,
+                                       maxiter=1000)
         self.iterations += count
         self.history = [x, *self.history[:self.REMEMBER - 1]]
         return x
@@ -598,7 +592,7 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
 
     Systems with at most ``direct_limit`` unknowns are solved by sparse LU (SuperLU in
     symmetric mode, refined up to twice while the relative residual is above ``tolerance``),
-    larger ones by conjugate gradients preconditioned by smoothed-aggregation V-cycles (to
+    larger ones by conjugate gradients preconditioned by smoothed-aggregation multigrid cycles (to
     ``tolerance``, started from a projection on the last pressures): one LU per distinct
     step, the last four kept, or one AMG set-up for all steps, whose levels take each
     step's storage term exactly. The cumulative-versus-depletion
