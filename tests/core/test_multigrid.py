@@ -63,18 +63,22 @@ def test_lines_hold_only_their_tridiagonal_couplings_after_rows_are_removed():
     # Removing rows (pinned or unsolved cells) makes grid neighbours consecutive rows that
     # are not vertical neighbours; every line must still be solvable as a tridiagonal system.
     A = heterogeneous_laplacian(shape=(6, 5, 4))
-    keep = np.flatnonzero(np.random.default_rng(0).random(A.shape[0]) > 0.3)
+    kept = np.random.default_rng(0).random(A.shape[0]) > 0.3
+    kept[-4:] = True  # the last column whole: a last line of 4 rows for the reverse sweep below
+    keep = np.flatnonzero(kept)
     A = A[keep][:, keep].tocsr()
     smoother = LineSmoother(A)
     line = np.repeat(np.arange(smoother.starts.size - 1), np.diff(smoother.starts))
     C = A.tocoo()
     assert not np.any((line[C.row] == line[C.col]) & (np.abs(C.row - C.col) > 1))
-    # One forward sweep from zero on a lower-block-triangular split is exact for the first line.
-    x = np.zeros(A.shape[0])
+    # One sweep from zero solves its first line exactly: the first line of the forward sweep
+    # (eliminated top-down), the last line of the reverse one (eliminated bottom-up).
     b = np.random.default_rng(1).normal(size=A.shape[0])
-    smoother.sweep(x, b, forward=True)
-    s, e = smoother.starts[:2]
-    np.testing.assert_allclose(A[s:e, s:e] @ x[s:e], b[s:e], rtol=1e-12)
+    for forward, (s, e) in ((True, smoother.starts[:2]), (False, smoother.starts[-2:])):
+        assert e - s > 1
+        x = np.zeros(A.shape[0])
+        smoother.sweep(x, b, forward=forward)
+        np.testing.assert_allclose(A[s:e, s:e] @ x[s:e], b[s:e], rtol=1e-12)
 
 
 def test_the_scaled_near_null_vector_is_what_the_scaled_matrix_nearly_annihilates():

@@ -14,8 +14,8 @@ spectral estimate and on products in block-sparse form, for the same iterations.
 sweeps, the coarse-grid correction and as many reverse sweeps, with the exact
 (pseudo-)inverse on the coarsest level, so the preconditioner is symmetric positive definite
 as conjugate gradients needs. The finest level, where a cycle spends most of its time, is
-visited once with one sweep each way (a V-cycle there); the levels below take two
-corrections per visit (a W-cycle) with two sweeps each way (Trottenberg, Oosterlee &
+visited once with one sweep each way; the second level takes two corrections per visit (a
+W-cycle there) and every level below the finest two sweeps each way (Trottenberg, Oosterlee &
 Schueller 2001, Multigrid, section 2.4, from memory). The cycle runs in single precision by
 default: a preconditioner need only approximate the inverse, the conjugate gradients around
 it stay in double precision and stop on the true residual, and the cycle moves half the bytes.
@@ -47,10 +47,10 @@ LANCZOS_STEPS = 10
 #: levels are coarsened until at most this many unknowns are left (solved densely)
 MAX_COARSE = 500
 MAX_LEVELS = 10
-#: below the finest level: coarse-grid corrections per visit (2, a W-cycle) and sweeps before
-#: and after them; the coarse levels cost a small part of a cycle, and on the benchmark
-#: field these cut the iterations by about a third for the same time per cycle
-COARSE_VISITS = 2
+#: coarse-grid corrections per visit of the second level (2: a W-cycle there; once below),
+#: and sweeps before and after them on every level below the finest; on the benchmark field
+#: these cut the iterations by about a third for about the same time per cycle
+SECOND_LEVEL_VISITS = 2
 COARSE_SWEEPS = 2
 
 
@@ -251,7 +251,8 @@ class MultigridCycle(spla.LinearOperator):
             np.dot(self._coarsest, b, out=x)
             return
         x[:] = 0
-        sweeps, visits = (1, 1) if level == 0 else (COARSE_SWEEPS, COARSE_VISITS)
+        sweeps = 1 if level == 0 else COARSE_SWEEPS
+        visits = SECOND_LEVEL_VISITS if level == 1 else 1
         for _ in range(sweeps):
             self._smooth(level, forward=True)
         for _ in range(visits):
@@ -341,9 +342,13 @@ class LineSmoother:
         First row of each line, and n.
     rest : scipy.sparse.csr_matrix
         The matrix without the couplings inside each line (nor the diagonal).
-    factor, upper, inverse_pivot : ndarray, (n,)
-        Each line's tridiagonal factorisation (Thomas algorithm: elimination factors,
-        upper band, inverse pivots).
+    lower, upper : ndarray, (n,)
+        Each line's bands: row i's coupling to row i - 1 and to row i + 1 (0 across lines).
+    factors : dict
+        For each direction (``forward`` True or False), the elimination factors and inverse
+        pivots of each line's tridiagonal system (Thomas algorithm) eliminated in that
+        direction: top-down for the forward sweep, bottom-up for the reverse one, so that
+        each sweep reads the rows in its own order.
     """
 
     def __init__(self, A: sp.csr_matrix):
@@ -353,10 +358,10 @@ class LineSmoother:
         with first_call(_line_starts):
             self.starts = _line_starts(A.indptr, A.indices, A.data, n)
         with first_call(_split_rows):
-            lower, upper, indptr, indices, data = _split_rows(A.indptr, A.indices, A.data, self.starts)
-        self.upper = upper
+            self.lower, self.upper, indptr, indices, data = _split_rows(A.indptr, A.indices, A.data, self.starts)
         with first_call(_thomas_factors):
-            self.factor, self.inverse_pivot = _thomas_factors(lower, A.diagonal(), upper, self.starts)
+            self.factors = {forward: _thomas_factors(self.lower, A.diagonal(), self.upper, self.starts, forward)
+                            for forward in (True, False)}
         self.rest = sp.csr_matrix((data, indices, indptr), shape=A.shape)
 
     def sweep(self, x: np.ndarray, b: np.ndarray, forward: bool) -> None:
@@ -372,8 +377,10 @@ class LineSmoother:
         forward : bool
         """
         R = self.rest
+        factor, inverse_pivot = self.factors[forward]
+        band = self.upper if forward else self.lower  # the coupling to the row substituted before
         with first_call(_line_sweep):
-            _line_sweep(unsigned(R.indptr), unsigned(R.indices), R.data, self.factor, self.upper, self.inverse_pivot,
+            _line_sweep(unsigned(R.indptr), unsigned(R.indices), R.data, factor, band, inverse_pivot,
                         self.starts, x, b, forward)
 
 
@@ -429,40 +436,49 @@ def _split_rows(indptr, indices, data, starts):
 
 
 @njit(cache=True)
-def _thomas_factors(lower, diagonal, upper, starts):
-    """Per line [s, e): elimination factors l_i / d_{i-1} and inverse pivots 1 / d_i."""
+def _thomas_factors(lower, diagonal, upper, starts, forward):
+    """Per line [s, e), eliminated top-down (``forward``) or bottom-up: each row's
+    elimination factor (its coupling to the row eliminated before it over that row's pivot)
+    and inverse pivot."""
     factor = np.zeros_like(diagonal)
     inverse_pivot = np.empty_like(diagonal)
     for line in range(starts.size - 1):
         s, e = starts[line], starts[line + 1]
-        pivot = diagonal[s]
-        inverse_pivot[s] = 1.0 / pivot
-        for i in range(s + 1, e):
-            factor[i] = lower[i] / pivot
-            pivot = diagonal[i] - factor[i] * upper[i - 1]
+        first = s if forward else e - 1
+        pivot = diagonal[first]
+        inverse_pivot[first] = 1.0 / pivot
+        for k in range(1, e - s):
+            i = s + k if forward else e - 1 - k
+            before = i - 1 if forward else i + 1
+            factor[i] = (lower[i] if forward else upper[i]) / pivot
+            pivot = diagonal[i] - factor[i] * (upper[before] if forward else lower[before])
             inverse_pivot[i] = 1.0 / pivot
     return factor, inverse_pivot
 
 
 @njit(cache=True)
-def _line_sweep(indptr, indices, data, factor, upper, inverse_pivot, starts, x, b, forward):
+def _line_sweep(indptr, indices, data, factor, band, inverse_pivot, starts, x, b, forward):
     """One line Gauss-Seidel sweep in place: each line solved exactly with the rest of its rows
-    (the CSR matrix indptr, indices, data) on the right-hand side."""
+    (the CSR matrix indptr, indices, data) on the right-hand side. Forward: lines in order,
+    each eliminated top-down and substituted bottom-up (``band`` the upper one); reverse:
+    everything the other way (``band`` the lower one)."""
     lines = starts.size - 1
     zero = np.zeros(1, dtype=x.dtype)[0]  # 0 in the sweep's precision, so that it stays in it
     for step in range(lines):
         line = step if forward else lines - 1 - step
         s, e = starts[line], starts[line + 1]
         previous = zero
-        for i in range(s, e):  # right-hand side and forward elimination, kept in x
+        for k in range(e - s):  # right-hand side and elimination, kept in x
+            i = s + k if forward else e - 1 - k
             r = b[i]
             for p in range(indptr[i], indptr[i + 1]):
                 r -= data[p] * x[indices[p]]
             previous = r - factor[i] * previous
             x[i] = previous
         following = zero
-        for i in range(e - 1, s - 1, -1):  # back substitution
-            following = (x[i] - upper[i] * following) * inverse_pivot[i]
+        for k in range(e - s):  # substitution
+            i = e - 1 - k if forward else s + k
+            following = (x[i] - band[i] * following) * inverse_pivot[i]
             x[i] = following
 
 
