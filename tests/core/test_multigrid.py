@@ -39,11 +39,12 @@ def test_cycle_is_symmetric_and_positive_definite():
     # hierarchy has intermediate levels, where the cycle is a W-cycle.
     A = heterogeneous_laplacian(shape=(10, 9, 7))
     for precision, tolerance in ((np.float64, 1e-12), (np.float32, 1e-6)):
-        for max_coarse, levels in ((MAX_COARSE, 2), (8, 3)):
-            M = MultigridCycle.from_levels(*aggregation_hierarchy(A, max_coarse=max_coarse), precision=precision)
+        for max_coarse, levels, visits in ((MAX_COARSE, 2, 2), (8, 3, 2), (8, 3, 1)):
+            M = MultigridCycle.from_levels(*aggregation_hierarchy(A, max_coarse=max_coarse), precision=precision,
+                                           visits=visits)
             assert len(M.operators) >= levels  # a real hierarchy, not just the coarsest solve
             dense = np.column_stack([M @ e for e in np.eye(A.shape[0])])
-            assert np.abs(dense - dense.T).max() <= tolerance * np.abs(dense).max(), (precision, max_coarse)
+            assert np.abs(dense - dense.T).max() <= tolerance * np.abs(dense).max(), (precision, max_coarse, visits)
             assert np.linalg.eigvalsh((dense + dense.T) / 2).min() > 0
 
 

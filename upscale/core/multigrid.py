@@ -49,9 +49,12 @@ MAX_COARSE = 500
 MAX_LEVELS = 10
 #: coarse-grid corrections per visit of the second level (2: a W-cycle there; once below),
 #: and sweeps before and after them on every level below the finest; on the benchmark field
-#: these cut the iterations by about a third for about the same time per cycle
+#: these cut the steady solves' iterations by about a third for about the same time per cycle
 SECOND_LEVEL_VISITS = 2
 COARSE_SWEEPS = 2
+#: the same for the time steps' systems (storage on the diagonal, better conditioned): one
+#: correction, where the second one cost more than the iterations it saved
+STEP_SECOND_LEVEL_VISITS = 1
 
 
 def aggregation_hierarchy(matrix, near_null: np.ndarray | None = None, max_coarse: int = MAX_COARSE,
@@ -172,6 +175,8 @@ class MultigridCycle(spla.LinearOperator):
         twice the iterations.
     precision : numpy dtype
         Of the cycle's arithmetic (the levels are kept in double precision as well).
+    visits : int
+        Coarse-grid corrections per visit of the second level.
 
     Attributes
     ----------
@@ -179,11 +184,13 @@ class MultigridCycle(spla.LinearOperator):
         The hierarchy in double precision: A_l, P_l and R_l = P_l^T.
     """
 
-    def __init__(self, matrix, near_null: np.ndarray | None = None, precision=np.float32):
-        self._set_levels(*aggregation_hierarchy(matrix, near_null), precision)
+    def __init__(self, matrix, near_null: np.ndarray | None = None, precision=np.float32,
+                 visits: int = SECOND_LEVEL_VISITS):
+        self._set_levels(*aggregation_hierarchy(matrix, near_null), precision, visits)
 
     @classmethod
-    def from_levels(cls, operators, prolongators, restrictors, precision=np.float32) -> "MultigridCycle":
+    def from_levels(cls, operators, prolongators, restrictors, precision=np.float32,
+                    visits: int = SECOND_LEVEL_VISITS) -> "MultigridCycle":
         """The cycle of a hierarchy given level by level, without a set-up.
 
         Parameters
@@ -193,22 +200,24 @@ class MultigridCycle(spla.LinearOperator):
         prolongators, restrictors : list of sparse matrix
             Between each level and the next: P_l, (n_l, n_{l+1}), and R_l = P_l^T.
         precision : numpy dtype
+        visits : int
 
         Returns
         -------
         MultigridCycle
         """
         cycle = cls.__new__(cls)
-        cycle._set_levels(operators, prolongators, restrictors, precision)
+        cycle._set_levels(operators, prolongators, restrictors, precision, visits)
         return cycle
 
-    def _set_levels(self, operators, prolongators, restrictors, precision) -> None:
+    def _set_levels(self, operators, prolongators, restrictors, precision, visits: int) -> None:
         """Keep the levels in CSR, copies in the cycle's precision and a buffer set per level;
         invert the coarsest and set up the line smoother."""
         self.operators = [_sorted(sp.csr_matrix(A, dtype=np.float64)) for A in operators]
         self.prolongators = [sp.csr_matrix(P, dtype=np.float64) for P in prolongators]
         self.restrictors = [sp.csr_matrix(R, dtype=np.float64) for R in restrictors]
         self.precision = np.dtype(precision)
+        self.visits = visits
         self._operators = [A.astype(self.precision) for A in self.operators]
         self._prolongators = [P.astype(self.precision) for P in self.prolongators]
         self._restrictors = [R.astype(self.precision) for R in self.restrictors]
@@ -252,7 +261,7 @@ class MultigridCycle(spla.LinearOperator):
             return
         x[:] = 0
         sweeps = 1 if level == 0 else COARSE_SWEEPS
-        visits = SECOND_LEVEL_VISITS if level == 1 else 1
+        visits = self.visits if level == 1 else 1
         for _ in range(sweeps):
             self._smooth(level, forward=True)
         for _ in range(visits):
@@ -310,7 +319,8 @@ class ShiftedCycles:
         MultigridCycle
         """
         operators = [K + S / dt for K, S in zip(self.stiffness, self.storage)]
-        return MultigridCycle.from_levels(operators, self.prolongators, self.restrictors)
+        return MultigridCycle.from_levels(operators, self.prolongators, self.restrictors,
+                                          visits=STEP_SECOND_LEVEL_VISITS)
 
 
 def scaled_near_null(scale: np.ndarray) -> np.ndarray:
