@@ -10,6 +10,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 from helpers import lognormal
 
+from upscale.checks.run import check
 from upscale.checks.transient import coarse_system, transient_check
 from upscale.core.transient import TransientSystem, projected_guess, simulate, time_grid, time_scale, well_factors
 from upscale.core.units import METRIC_TRANSMISSIBILITY
@@ -275,6 +276,10 @@ def test_bad_input_is_refused():
     coarse = coarsen(homogeneous((8, 4, 2)), ratio=(2, 2, 1), method="arithmetic")
     with pytest.raises(InputError, match="tile"):
         transient_check(fine, coarse)
+    # an option misspelt through the API is named, with the known ones, before any solve
+    with pytest.raises(InputError, match=r"^transient check: unknown option\(s\) step_per_doubling; known: drainage, "):
+        check(fine, coarsen(fine, ratio=(2, 2, 1), method="arithmetic"), checks="transient",
+              transient={"step_per_doubling": 4})
 
 
 def test_iterative_solver_agrees_with_direct():

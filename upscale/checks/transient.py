@@ -10,6 +10,7 @@ the constant and metres-to-length factor of the file's units
 
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -139,9 +140,37 @@ def _relative(a, b):
     return [None if bb == 0 else _number((aa - bb) / bb) for aa, bb in zip(np.ravel(a), np.ravel(b))]
 
 
-def check_options(coarse: xr.Dataset, fine_shape, drainage: str = "face", face: str = "x-", column=None,
-                  compressibility: float = DEFAULT_COMPRESSIBILITY, viscosity: float = DEFAULT_VISCOSITY,
-                  steps_per_doubling: int = 8, span=DEFAULT_SPAN, **_ignored):
+@dataclasses.dataclass(frozen=True)
+class DrainageOptions:
+    """The options of :func:`transient_check` and :func:`fine_transient_run` (see there for
+    each), with their defaults."""
+
+    drainage: str = "face"
+    face: str = "x-"
+    column: tuple | None = None
+    times: object = None
+    p_initial: float = DEFAULT_P_INITIAL
+    p_drain: float = DEFAULT_P_DRAIN
+    compressibility: float = DEFAULT_COMPRESSIBILITY
+    viscosity: float = DEFAULT_VISCOSITY
+    well_radius: float = DEFAULT_WELL_RADIUS
+    span: tuple = DEFAULT_SPAN
+    steps_per_doubling: int = 8
+    direct_limit: int = DIRECT_LIMIT
+    solve_tolerance: float = CHECK_SOLVE_TOLERANCE
+
+    @classmethod
+    def of(cls, options: dict) -> "DrainageOptions":
+        """The options given by name; InputError naming any unknown one."""
+        known = [f.name for f in dataclasses.fields(cls)]
+        unknown = sorted(set(options) - set(known))
+        if unknown:
+            raise InputError(f"transient check: unknown option(s) {', '.join(unknown)}; "
+                             f"known: {', '.join(known)}")
+        return cls(**options)
+
+
+def check_options(coarse: xr.Dataset, fine_shape, **options):
     """Check the set-up of :func:`transient_check` before any work.
 
     Parameters
@@ -151,41 +180,38 @@ def check_options(coarse: xr.Dataset, fine_shape, drainage: str = "face", face: 
         "well").
     fine_shape : tuple of int
         (nx, ny, nz) of the fine field.
-    drainage, face, column, compressibility, viscosity, steps_per_doubling, span
-        As for :func:`transient_check`; other keywords are ignored.
+    **options
+        As for :func:`transient_check` (:class:`DrainageOptions`).
 
     Returns
     -------
     tuple of int or None
-        The well column (i, j) for "well", else ``column`` unchanged.
+        The well column (i, j) for "well", else the ``column`` option unchanged.
 
     Raises
     ------
     InputError
-        If any option is wrong.
+        If any option is wrong or unknown.
     """
-    drainage = check_drainage(drainage)
+    o = DrainageOptions.of(options)
+    drainage = check_drainage(o.drainage)
+    column = o.column
     if drainage == "well":
         column = well_column(column, fine_shape)
         coarse_partition(coarse, fine_shape)
     else:
-        drainage_face(face)
+        drainage_face(o.face)
         coarse_partition(coarse, fine_shape, required=False)
-    check_fluid(compressibility, viscosity)
+    check_fluid(o.compressibility, o.viscosity)
     try:
-        first, end = (float(v) for v in span)
+        first, end = (float(v) for v in o.span)
     except (TypeError, ValueError):
-        raise InputError(f"time span must be two numbers (multiples of the time scale), got {span!r}") from None
-    time_grid(first, end, steps_per_doubling)  # raises on a bad span or step count
+        raise InputError(f"time span must be two numbers (multiples of the time scale), got {o.span!r}") from None
+    time_grid(first, end, o.steps_per_doubling)  # raises on a bad span or step count
     return column
 
 
-def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face", face: str = "x-",
-                    column=None, times=None, p_initial: float = DEFAULT_P_INITIAL,
-                    p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
-                    viscosity: float = DEFAULT_VISCOSITY, well_radius: float = DEFAULT_WELL_RADIUS,
-                    span=DEFAULT_SPAN, steps_per_doubling: int = 8, direct_limit: int = DIRECT_LIMIT,
-                    solve_tolerance: float = CHECK_SOLVE_TOLERANCE, fine_run: dict | None = None) -> dict:
+def transient_check(fine: xr.Dataset, coarse: xr.Dataset, fine_run: dict | None = None, **options) -> dict:
     """Drain a fine field and its coarse grid the same way and compare.
 
     Both models use the same time grid (implicit Euler), so the comparison isolates the
@@ -195,6 +221,15 @@ def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face"
     ----------
     fine, coarse : xarray.Dataset
         The fine field and its coarse grid.
+    fine_run : dict, optional
+        The fine model's run with the same options, already made
+        (:func:`fine_transient_run`, e.g. on a worker process); None: run here.
+    **options
+        Any of the options below (:class:`DrainageOptions`); an unknown one raises
+        InputError.
+
+    Other Parameters
+    ----------------
     drainage, face, column, well_radius
         "face" (``face`` "x-" ... "z+") or "well" (fine ``column`` (i, j), the grid
         centre if None; ``well_radius`` in m).
@@ -207,9 +242,6 @@ def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face"
         Largest model solved directly (more unknowns: AMG-preconditioned CG).
     solve_tolerance : float
         Relative residual of each step's solve.
-    fine_run : dict, optional
-        The fine model's run with the same options, already made
-        (:func:`fine_transient_run`, e.g. on a worker process); None: run here.
 
     Returns
     -------
@@ -223,30 +255,24 @@ def transient_check(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face"
         'pore_volume_relative_difference' ((coarse - fine) / fine), and the pressures,
         compressibility and viscosity used.
     """
-    models, scale, times = _set_up(fine, coarse, drainage, face, column, times, compressibility, viscosity,
-                                   well_radius, span, steps_per_doubling)
-    runs = {name: fine_run if name == "fine" and fine_run is not None
-            else simulate(system, times, p_initial, p_drain, compressibility, viscosity, direct_limit=direct_limit,
-                          tolerance=solve_tolerance) for name, system in models.items()}
+    o = DrainageOptions.of(options)
+    models, scale, times = _set_up(fine, coarse, o)
+    runs = {name: fine_run if name == "fine" and fine_run is not None else _run(system, times, o)
+            for name, system in models.items()}
     return {
-        "drainage": _drainage_setup(drainage, face, well_radius, models),
-        "p_initial_bar": float(p_initial),
-        "p_drain_bar": float(p_drain),
-        "compressibility_per_bar": float(compressibility),
-        "viscosity_cP": float(viscosity),
+        "drainage": _drainage_setup(o.drainage, o.face, o.well_radius, models),
+        "p_initial_bar": float(o.p_initial),
+        "p_drain_bar": float(o.p_drain),
+        "compressibility_per_bar": float(o.compressibility),
+        "viscosity_cP": float(o.viscosity),
         "time_scale": {k: _number(v) for k, v in scale.items()},
         "times": [_number(t) for t in np.asarray(times, dtype=float)],
         **_comparison(runs, models),
     }
 
 
-def fine_transient_run(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "face", face: str = "x-",
-                       column=None, times=None, p_initial: float = DEFAULT_P_INITIAL,
-                       p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
-                       viscosity: float = DEFAULT_VISCOSITY, well_radius: float = DEFAULT_WELL_RADIUS,
-                       span=DEFAULT_SPAN, steps_per_doubling: int = 8, direct_limit: int = DIRECT_LIMIT,
-                       solve_tolerance: float = CHECK_SOLVE_TOLERANCE) -> dict:
-    """The fine model's run of :func:`transient_check` alone, with the same arguments.
+def fine_transient_run(fine: xr.Dataset, coarse: xr.Dataset, **options) -> dict:
+    """The fine model's run of :func:`transient_check` alone, with the same options.
 
     Returns
     -------
@@ -254,36 +280,34 @@ def fine_transient_run(fine: xr.Dataset, coarse: xr.Dataset, drainage: str = "fa
         That of :func:`upscale.core.transient.simulate`: pass it to :func:`transient_check`
         as ``fine_run``.
     """
-    models, _, times = _set_up(fine, coarse, drainage, face, column, times, compressibility, viscosity,
-                               well_radius, span, steps_per_doubling)
-    return simulate(models["fine"], times, p_initial, p_drain, compressibility, viscosity,
-                    direct_limit=direct_limit, tolerance=solve_tolerance)
+    o = DrainageOptions.of(options)
+    models, _, times = _set_up(fine, coarse, o)
+    return _run(models["fine"], times, o)
 
 
-def _set_up(fine: xr.Dataset, coarse: xr.Dataset, drainage: str, face: str, column, times, compressibility: float,
-            viscosity: float, well_radius: float, span, steps_per_doubling: int):
-    """Both models (:func:`_models`), the fine field's time scale and the step end times
-    (``times``, else the default grid over ``span`` time scales)."""
-    cells, column, models = _models(fine, coarse, drainage, face, column, compressibility, viscosity,
-                                    steps_per_doubling, well_radius, span)
-    scale = time_scale(cells, drainage, face, column, compressibility, viscosity, models["fine"].drainage_factor)
-    if times is None:
-        times = time_grid(span[0] * scale["time_scale_days"], span[1] * scale["time_scale_days"],
-                          steps_per_doubling)
-    return models, scale, times
+def _run(system: TransientSystem, times, o: DrainageOptions) -> dict:
+    """One model's drainage run (:func:`upscale.core.transient.simulate`) with the options ``o``."""
+    return simulate(system, times, o.p_initial, o.p_drain, o.compressibility, o.viscosity,
+                    direct_limit=o.direct_limit, tolerance=o.solve_tolerance)
 
 
-def _models(fine: xr.Dataset, coarse: xr.Dataset, drainage: str, face: str, column, compressibility: float,
-            viscosity: float, steps_per_doubling: int, well_radius: float, span):
-    """The fine field's arrays, the well column (:func:`check_options`) and both models."""
+def _set_up(fine: xr.Dataset, coarse: xr.Dataset, o: DrainageOptions):
+    """Both models (fine and coarse :class:`TransientSystem`), the fine field's time scale
+    and the step end times (the ``times`` option, else the default grid over ``span``
+    time scales)."""
     fine = validate(fine, where="fine field")
     coarse = validate(coarse, where="coarse grid")
     cells = arrays(fine)
-    column = check_options(coarse, cells.shape, drainage, face, column, compressibility, viscosity,
-                           steps_per_doubling, span)
-    models = {"fine": TransientSystem.from_fine(cells, drainage, face, column, well_radius),
-              "coarse": coarse_system(coarse, drainage, face, column, cells.shape, well_radius)}
-    return cells, column, models
+    column = check_options(coarse, cells.shape, **dataclasses.asdict(o))
+    models = {"fine": TransientSystem.from_fine(cells, o.drainage, o.face, column, o.well_radius),
+              "coarse": coarse_system(coarse, o.drainage, o.face, column, cells.shape, o.well_radius)}
+    scale = time_scale(cells, o.drainage, o.face, column, o.compressibility, o.viscosity,
+                       models["fine"].drainage_factor)
+    times = o.times
+    if times is None:
+        times = time_grid(o.span[0] * scale["time_scale_days"], o.span[1] * scale["time_scale_days"],
+                          o.steps_per_doubling)
+    return models, scale, times
 
 
 def _drainage_setup(drainage: str, face: str, well_radius: float, models: dict) -> dict:
