@@ -52,6 +52,8 @@ MAX_LEVELS = 10
 #: these cut the steady solves' iterations by about a third for about the same time per cycle
 SECOND_LEVEL_VISITS = 2
 COARSE_SWEEPS = 2
+#: the cycles' precision unless told
+CYCLE_PRECISION = np.float32
 #: the same for the time steps' systems (storage on the diagonal, better conditioned): one
 #: correction, where the second one cost more than the iterations it saved
 STEP_SECOND_LEVEL_VISITS = 1
@@ -174,22 +176,22 @@ class MultigridCycle(spla.LinearOperator):
         D^1/2 1 (:func:`scaled_near_null`). With ones there the scaled system needs about
         twice the iterations.
     precision : numpy dtype
-        Of the cycle's arithmetic (the levels are kept in double precision as well).
+        Of the cycle's arithmetic and of the levels it keeps.
     visits : int
         Coarse-grid corrections per visit of the second level.
 
     Attributes
     ----------
     operators, prolongators, restrictors : list of scipy.sparse.csr_matrix
-        The hierarchy in double precision: A_l, P_l and R_l = P_l^T.
+        The hierarchy in the cycle's precision: A_l, P_l and R_l = P_l^T.
     """
 
-    def __init__(self, matrix, near_null: np.ndarray | None = None, precision=np.float32,
+    def __init__(self, matrix, near_null: np.ndarray | None = None, precision=CYCLE_PRECISION,
                  visits: int = SECOND_LEVEL_VISITS):
         self._set_levels(*aggregation_hierarchy(matrix, near_null), precision, visits)
 
     @classmethod
-    def from_levels(cls, operators, prolongators, restrictors, precision=np.float32,
+    def from_levels(cls, operators, prolongators, restrictors, precision=CYCLE_PRECISION,
                     visits: int = SECOND_LEVEL_VISITS) -> "MultigridCycle":
         """The cycle of a hierarchy given level by level, without a set-up.
 
@@ -211,18 +213,15 @@ class MultigridCycle(spla.LinearOperator):
         return cycle
 
     def _set_levels(self, operators, prolongators, restrictors, precision, visits: int) -> None:
-        """Keep the levels in CSR, copies in the cycle's precision and a buffer set per level;
-        invert the coarsest and set up the line smoother."""
-        self.operators = [_sorted(sp.csr_matrix(A, dtype=np.float64)) for A in operators]
-        self.prolongators = [sp.csr_matrix(P, dtype=np.float64) for P in prolongators]
-        self.restrictors = [sp.csr_matrix(R, dtype=np.float64) for R in restrictors]
+        """Keep the levels in CSR in the cycle's precision (no copy of those already in it)
+        and a buffer set per level; invert the coarsest and set up the line smoother."""
         self.precision = np.dtype(precision)
         self.visits = visits
-        self._operators = [A.astype(self.precision) for A in self.operators]
-        self._prolongators = [P.astype(self.precision) for P in self.prolongators]
-        self._restrictors = [R.astype(self.precision) for R in self.restrictors]
-        self._coarsest = np.linalg.pinv(self.operators[-1].toarray()).astype(self.precision)
-        self.line_smoother = LineSmoother(self._operators[0])
+        self._coarsest = np.linalg.pinv(sp.csr_matrix(operators[-1]).toarray()).astype(self.precision)
+        self.operators = [_sorted(_in_precision(A, self.precision)) for A in operators]
+        self.prolongators = [_in_precision(P, self.precision) for P in prolongators]
+        self.restrictors = [_in_precision(R, self.precision) for R in restrictors]
+        self.line_smoother = LineSmoother(self.operators[0])
         # Per level: the iterate, the right-hand side and the residual. One set serves every
         # visit (a level's visits follow each other), so a cycle object serves one solve at a time.
         sizes = [A.shape[0] for A in self.operators]
@@ -256,7 +255,7 @@ class MultigridCycle(spla.LinearOperator):
         """The cycle's approximate solution of level ``level``'s system for its right-hand
         side buffer, into its iterate buffer (exact on the coarsest level)."""
         x, b = self._x[level], self._b[level]
-        if level == len(self._operators) - 1:
+        if level == len(self.operators) - 1:
             np.dot(self._coarsest, b, out=x)
             return
         x[:] = 0
@@ -265,10 +264,10 @@ class MultigridCycle(spla.LinearOperator):
         for _ in range(sweeps):
             self._smooth(level, forward=True)
         for _ in range(visits):
-            residual_into(self._operators[level], x, b, self._r[level])
-            product_into(self._restrictors[level], self._r[level], self._b[level + 1])
+            residual_into(self.operators[level], x, b, self._r[level])
+            product_into(self.restrictors[level], self._r[level], self._b[level + 1])
             self._cycle(level + 1)
-            add_product_into(self._prolongators[level], self._x[level + 1], x)
+            add_product_into(self.prolongators[level], self._x[level + 1], x)
         for _ in range(sweeps):
             self._smooth(level, forward=False)
 
@@ -277,7 +276,7 @@ class MultigridCycle(spla.LinearOperator):
         if level == 0:
             self.line_smoother.sweep(self._x[0], self._b[0], forward)
         else:
-            _gauss_seidel(self._operators[level], self._x[level], self._b[level], forward)
+            _gauss_seidel(self.operators[level], self._x[level], self._b[level], forward)
 
 
 class ShiftedCycles:
@@ -305,6 +304,9 @@ class ShiftedCycles:
         for P, R in zip(self.prolongators, self.restrictors):
             self.stiffness.append((R @ self.stiffness[-1] @ P).tocsr())
             self.storage.append((R @ self.storage[-1] @ P).tocsr())
+        # the transfers in the cycles' precision, made once for every member
+        self._transfers = ([_in_precision(P, CYCLE_PRECISION) for P in self.prolongators],
+                           [_in_precision(R, CYCLE_PRECISION) for R in self.restrictors])
 
     def cycle(self, dt: float) -> MultigridCycle:
         """The cycle of K + diag(storage) / dt.
@@ -319,8 +321,7 @@ class ShiftedCycles:
         MultigridCycle
         """
         operators = [K + S / dt for K, S in zip(self.stiffness, self.storage)]
-        return MultigridCycle.from_levels(operators, self.prolongators, self.restrictors,
-                                          visits=STEP_SECOND_LEVEL_VISITS)
+        return MultigridCycle.from_levels(operators, *self._transfers, visits=STEP_SECOND_LEVEL_VISITS)
 
 
 def scaled_near_null(scale: np.ndarray) -> np.ndarray:
@@ -490,6 +491,12 @@ def _line_sweep(indptr, indices, data, factor, band, inverse_pivot, starts, x, b
             i = e - 1 - k if forward else s + k
             following = (x[i] - band[i] * following) * inverse_pivot[i]
             x[i] = following
+
+
+def _in_precision(A, precision) -> sp.csr_matrix:
+    """A in CSR with values of ``precision``: A itself if it already is."""
+    A = sp.csr_matrix(A)
+    return A if A.dtype == precision else A.astype(precision)
 
 
 def _sorted(A: sp.csr_matrix) -> sp.csr_matrix:

@@ -496,15 +496,16 @@ def projected_guess(A, b: np.ndarray, vectors) -> np.ndarray:
 
 
 class _StepSolver:
-    """Solves (diag(storage / dt) + K) u = rhs for each step dt, the last few steps' solvers
-    kept. Small systems: sparse LU of the matrix scaled to unit diagonal, one per distinct
+    """Solves (diag(storage / dt) + K) u = rhs for each step dt, the last ``keep`` steps'
+    solvers kept (one by default: :func:`time_grid` repeats each step before it grows, and
+    a kept solver of a 1 M-cell model holds a few hundred MB). Small systems: sparse LU of the matrix scaled to unit diagonal, one per distinct
     dt. Large ones: CG preconditioned by multigrid cycles that share one set-up for every dt
     (:class:`upscale.core.multigrid.ShiftedCycles`), started from :func:`projected_guess`
     over the last pressure and the last ``REMEMBER`` solutions."""
 
     REMEMBER = 6
 
-    def __init__(self, K, storage, direct_limit: int, tolerance: float, keep: int = 4):
+    def __init__(self, K, storage, direct_limit: int, tolerance: float, keep: int = 1):
         self.K = K
         self.storage = storage
         self.direct = storage.size <= direct_limit
