@@ -217,7 +217,8 @@ class MultigridCycle(spla.LinearOperator):
         and a buffer set per level; invert the coarsest and set up the line smoother."""
         self.precision = np.dtype(precision)
         self.visits = visits
-        self._coarsest = np.linalg.pinv(sp.csr_matrix(operators[-1]).toarray()).astype(self.precision)
+        coarsest = sp.csr_matrix(operators[-1]).toarray().astype(np.float64)  # inverted in double precision
+        self._coarsest = np.linalg.pinv(coarsest).astype(self.precision)
         self.operators = [_sorted(_in_precision(A, self.precision)) for A in operators]
         self.prolongators = [_in_precision(P, self.precision) for P in prolongators]
         self.restrictors = [_in_precision(R, self.precision) for R in restrictors]
@@ -286,6 +287,8 @@ class ShiftedCycles:
     member; each level keeps its Galerkin stiffness K_l = R_l K_{l-1} P_l and storage
     S_l = R_l S_{l-1} P_l, so a member's levels are exactly K_l + S_l / dt for any step
     dt, at the cost of a sparse sum per level instead of a new set-up.
+    The aggregates and prolongators are those of :func:`aggregation_hierarchy` of the first
+    member, K + diag(storage) / dt.
 
     Parameters
     ----------
@@ -299,14 +302,14 @@ class ShiftedCycles:
 
     def __init__(self, stiffness, storage: np.ndarray, dt: float):
         stiffness = sp.csr_matrix(stiffness)
-        _, self.prolongators, self.restrictors = aggregation_hierarchy(stiffness + sp.diags(storage / dt))
+        _, prolongators, restrictors = aggregation_hierarchy(stiffness + sp.diags(storage / dt))
         self.stiffness, self.storage = [stiffness], [sp.diags(storage).tocsr()]
-        for P, R in zip(self.prolongators, self.restrictors):
+        for P, R in zip(prolongators, restrictors):
             self.stiffness.append((R @ self.stiffness[-1] @ P).tocsr())
             self.storage.append((R @ self.storage[-1] @ P).tocsr())
-        # the transfers in the cycles' precision, made once for every member
-        self._transfers = ([_in_precision(P, CYCLE_PRECISION) for P in self.prolongators],
-                           [_in_precision(R, CYCLE_PRECISION) for R in self.restrictors])
+        # only the transfers in the cycles' precision are kept, made once for every member
+        self._transfers = ([_in_precision(P, CYCLE_PRECISION) for P in prolongators],
+                           [_in_precision(R, CYCLE_PRECISION) for R in restrictors])
 
     def cycle(self, dt: float) -> MultigridCycle:
         """The cycle of K + diag(storage) / dt.
@@ -320,7 +323,8 @@ class ShiftedCycles:
         -------
         MultigridCycle
         """
-        operators = [K + S / dt for K, S in zip(self.stiffness, self.storage)]
+        # each level made in the cycles' precision at once, so that no second full set is held
+        operators = [_in_precision(K + S / dt, CYCLE_PRECISION) for K, S in zip(self.stiffness, self.storage)]
         return MultigridCycle.from_levels(operators, *self._transfers, visits=STEP_SECOND_LEVEL_VISITS)
 
 

@@ -524,6 +524,8 @@ class _StepSolver:
             if abs(known - dt) <= 1e-12 * dt:
                 self.cache.move_to_end(known)
                 return known, entry
+        while len(self.cache) >= self.keep:  # make room first: the peak holds one solver fewer
+            self.cache.popitem(last=False)
         A = (self.K + sp.diags(self.storage / dt)).tocsr()
         if self.direct:
             scaled, scale = unit_diagonal(A)
@@ -535,8 +537,6 @@ class _StepSolver:
                 self.factorisations += 1
             entry = (A, self.cycles.cycle(dt), None)
         self.cache[dt] = entry
-        while len(self.cache) > self.keep:
-            self.cache.popitem(last=False)
         return dt, entry
 
     def summary(self) -> dict:
