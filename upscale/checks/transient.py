@@ -193,7 +193,11 @@ def check_options(coarse: xr.Dataset, fine_shape, **options):
     InputError
         If any option is wrong or unknown.
     """
-    o = DrainageOptions.of(options)
+    return _checked_column(coarse, fine_shape, DrainageOptions.of(options))
+
+
+def _checked_column(coarse: xr.Dataset, fine_shape, o: DrainageOptions):
+    """:func:`check_options` on options already gathered."""
     drainage = check_drainage(o.drainage)
     column = o.column
     if drainage == "well":
@@ -298,7 +302,7 @@ def _set_up(fine: xr.Dataset, coarse: xr.Dataset, o: DrainageOptions):
     fine = validate(fine, where="fine field")
     coarse = validate(coarse, where="coarse grid")
     cells = arrays(fine)
-    column = check_options(coarse, cells.shape, **dataclasses.asdict(o))
+    column = _checked_column(coarse, cells.shape, o)
     models = {"fine": TransientSystem.from_fine(cells, o.drainage, o.face, column, o.well_radius),
               "coarse": coarse_system(coarse, o.drainage, o.face, column, cells.shape, o.well_radius)}
     scale = time_scale(cells, o.drainage, o.face, column, o.compressibility, o.viscosity,

@@ -283,12 +283,11 @@ class MultigridCycle(spla.LinearOperator):
 class ShiftedCycles:
     """Multigrid cycles for every matrix of the family K + diag(storage) / dt, one set-up for all.
 
-    The aggregates and prolongators come from one smoothed-aggregation set-up on the first
-    member; each level keeps its Galerkin stiffness K_l = R_l K_{l-1} P_l and storage
-    S_l = R_l S_{l-1} P_l, so a member's levels are exactly K_l + S_l / dt for any step
-    dt, at the cost of a sparse sum per level instead of a new set-up.
-    The aggregates and prolongators are those of :func:`aggregation_hierarchy` of the first
-    member, K + diag(storage) / dt.
+    The aggregates and prolongators come from one smoothed-aggregation set-up
+    (:func:`aggregation_hierarchy`) of the first member, K + diag(storage) / dt; each level
+    keeps its Galerkin stiffness K_l = R_l K_{l-1} P_l and storage S_l = R_l S_{l-1} P_l, so
+    a member's levels are exactly K_l + S_l / dt for any step dt, at the cost of a sparse
+    sum per level instead of a new set-up.
 
     Parameters
     ----------
@@ -304,6 +303,8 @@ class ShiftedCycles:
         stiffness = sp.csr_matrix(stiffness)
         _, prolongators, restrictors = aggregation_hierarchy(stiffness + sp.diags(storage / dt))
         self.stiffness, self.storage = [stiffness], [sp.diags(storage).tocsr()]
+        # K_l is made on its own, not as the set-up's level minus S_l / dt: at the first (the
+        # smallest) step the storage term dominates, and the difference would cancel
         for P, R in zip(prolongators, restrictors):
             self.stiffness.append((R @ self.stiffness[-1] @ P).tocsr())
             self.storage.append((R @ self.storage[-1] @ P).tocsr())

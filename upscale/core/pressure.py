@@ -274,9 +274,10 @@ def _solve_rest(A, b, p, trivial, keep, tolerance: float, direct_limit: int):
     if keep.size == b.size:  # nothing trivial (the common case): no copy of the matrix
         sub, rest = A, b
     else:
-        sub = A[keep][:, keep]
+        rows = A[keep]
+        sub = rows[:, keep]
         # Couplings between kept and trivial rows vanish only if A is symmetric: moved to the right-hand side.
-        rest = b[keep] - A[keep][:, np.flatnonzero(trivial)] @ p[trivial]
+        rest = b[keep] - rows[:, np.flatnonzero(trivial)] @ p[trivial]
     scaled, scale = unit_diagonal(sub)
     if keep.size <= direct_limit:
         x, steps = refined_direct(sub, symmetric_lu(scaled), scale, rest, tolerance)

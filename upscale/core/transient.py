@@ -498,8 +498,8 @@ def projected_guess(A, b: np.ndarray, vectors) -> np.ndarray:
 class _StepSolver:
     """Solves (diag(storage / dt) + K) u = rhs for each step dt, the last ``keep`` steps'
     solvers kept (one by default: :func:`time_grid` repeats each step before it grows, and
-    a kept solver of a 1 M-cell model holds a few hundred MB). Small systems: sparse LU of the matrix scaled to unit diagonal, one per distinct
-    dt. Large ones: CG preconditioned by multigrid cycles that share one set-up for every dt
+    a kept solver of a 1 M-cell model holds a few hundred MB). Small systems: sparse LU of
+    the matrix scaled to unit diagonal, one per distinct dt. Large ones: CG preconditioned by multigrid cycles that share one set-up for every dt
     (:class:`upscale.core.multigrid.ShiftedCycles`), started from :func:`projected_guess`
     over the last pressure and the last ``REMEMBER`` solutions."""
 
