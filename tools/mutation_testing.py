@@ -3,6 +3,7 @@
     pip install -e ".[test,mutation]"
     nice -n 15 python tools/mutation_testing.py                 # every module below
     nice -n 15 python tools/mutation_testing.py static pressure # some of them
+    nice -n 15 python tools/mutation_testing.py block_problems --functions _tensor,_interpolate
 
 For each module of ``MODULES`` the project (``upscale/``, ``tests/``, ``pyproject.toml``)
 is copied into a fresh temporary folder, a ``[tool.mutmut]`` section naming that one
@@ -211,15 +212,22 @@ def _summarise(work: Path, module: str, seconds: float, retested: list[str] | No
             "survivors": survivors, "unused_equivalents": unused}
 
 
+def _patterns(module: str, functions: list[str]) -> list[str]:
+    """mutmut's name patterns of every mutant of ``functions`` ('func' or 'Class.method')."""
+    return [f"upscale.core.{module}." + ("xǁ" + f.replace(".", "ǁ") if "." in f else "x_" + f) + "__mutmut_*"
+            for f in functions]
+
+
 def run_module(module: str, tests: list[str], children: int, keep: bool, rerun: Path | None = None,
-               sample: int | None = None) -> dict:
-    """Mutate ``module`` in a fresh copy of the project, or, with ``rerun`` (a folder kept by an
+               sample: int | None = None, functions: list[str] | None = None) -> dict:
+    """Mutate ``module`` in a fresh copy of the project (only the mutants of ``functions``, if
+    given; the others are reported as not tested), or, with ``rerun`` (a folder kept by an
     earlier run), copy today's tests there and test again only the mutants that survived it
     (tests only added since: a killed mutant stays killed)."""
     if rerun is None:
         work = Path(tempfile.mkdtemp(prefix=f"mutation-{module}-"))
         _copy_project(work)
-        names, equivalent_before, untested = [], frozenset(), frozenset()
+        names, equivalent_before, untested = _patterns(module, functions or []), frozenset(), frozenset()
     else:
         work = rerun
         before = json.loads((work / "report.json").read_text())
@@ -262,6 +270,9 @@ def main(argv=None) -> int:
     parser.add_argument("--keep", action="store_true", help="keep the temporary folders (mutmut show/browse there)")
     parser.add_argument("--sample", type=int, metavar="N",
                         help="with --rerun: of the mutants the kept run never reached, test a seeded random N only")
+    parser.add_argument("--functions", metavar="F,G", type=lambda text: [f for f in text.split(",") if f],
+                        help="mutate only these functions of the module ('func' or 'Class.method'); the "
+                             "module's other mutants are reported as not tested")
     parser.add_argument("--rerun", type=Path, metavar="FOLDER",
                         help="a folder kept by an earlier run of one module: test its survivors again with "
                              "today's tests")
@@ -270,9 +281,12 @@ def main(argv=None) -> int:
     if unknown:
         parser.error(f"unknown module(s) {unknown}; choose from {', '.join(MODULES)}")
     modules = args.modules or list(MODULES)
-    if args.rerun is not None and len(modules) != 1:
-        parser.error("--rerun takes the folder of one module: name that module")
-    reports = [run_module(m, MODULES[m], args.children, args.keep, args.rerun, args.sample) for m in modules]
+    if (args.rerun is not None or args.functions) and len(modules) != 1:
+        parser.error("--rerun and --functions take one module: name that module")
+    if args.rerun is not None and args.functions:
+        parser.error("--functions is for a fresh run, not with --rerun")
+    reports = [run_module(m, MODULES[m], args.children, args.keep, args.rerun, args.sample, args.functions)
+               for m in modules]
     print("\n| module | mutants | killed | equivalent | score over non-equivalent |\n|---|---|---|---|---|")
     for r in reports:
         print(f"| `core/{r['module']}.py` | {r['mutants']} | {r['killed']} | {r['equivalent']} | "

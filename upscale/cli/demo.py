@@ -35,7 +35,7 @@ DEMO_RATIO = (5, 5, 5)
 CURVE_PATHS = {"capillary": "curves", "viscous": "viscous_curves"}
 
 
-#: The demo's transient check takes 4 implicit Euler steps per doubling of time from 0.01 to
+#: The demo's transient check takes 4 time steps per doubling of time from 0.01 to
 #: about 1.3 drainage time scales (``upscale check`` by default: 8 steps per doubling from
 #: 0.001 to 3): the fine model's time steps are most of the demo's run time, the last
 #: doublings (the model nearly drained) the dearest; both models share the time grid, so the

@@ -212,7 +212,7 @@ def _check_options(p: argparse.ArgumentParser) -> None:
                    help="total compressibility in 1/bar (default 1e-4)")
     p.add_argument("--viscosity", type=float, default=1.0, help="viscosity in cP (default 1)")
     p.add_argument("--steps-per-doubling", type=int, default=8,
-                   help="implicit Euler steps per doubling of time (even, default 8)")
+                   help="time steps per doubling of time (even, default 8)")
     _add_pinch_outs(p, "check")
 
 

@@ -1,16 +1,28 @@
 """Transient drainage: slightly compressible single-phase flow on a two-point flux grid.
 
-Per cell i, implicit (backward) Euler from time n to n+1:
+Per cell i, from time n to n+1 with step dt:
 
-    (PV_i c_t / dt) (p_i^{n+1} - p_i^n) + sum_j (T_ij / mu) (p_i - p_j) + (T_b,i / mu) (p_i - p_w) = 0
+    (PV_i c_t / dt) (a p_i^{n+1} - b p_i^n + c p_i^{n-1}) + sum_j (T_ij / mu) (p_i - p_j)
+        + (T_b,i / mu) (p_i - p_w) = 0
 
-with pressures p in bar, T in m3*cP/(day*bar) (divided by the viscosity mu in cP it is
+where the step repeats the one before it, the second-order backward difference formula
+(BDF2), a = 3/2, b = 2, c = 1/2; where the step is the first or grows (the first step of
+each doubling phase of :func:`time_grid`), implicit Euler, a = b = 1, c = 0 (Hairer,
+Norsett & Wanner 1993, Solving Ordinary Differential Equations I, 2nd ed., section III.5,
+from memory). BDF2 across the doubling (its variable-step form, w = 2) left late rates
+of the demo field negative, since its second root, w^2 / (1 + 2w), is then 0.8; implicit
+Euler there keeps them positive. The number of such steps is set by the span, not by the
+steps per doubling, so the time error still falls with the square of the step.
+
+Pressures p are in bar, T in m3*cP/(day*bar) (divided by the viscosity mu in cP it is
 m3/(day*bar)), pore volume PV in m3, total compressibility c_t in 1/bar and time in days.
 The pressure starts uniform at ``p_initial`` and the model drains through the drainage
 connection T_b, held at ``p_drain`` = p_w. The rate (positive out) at the end of a step is
-q = sum_i (T_b,i / mu) (p_i^{n+1} - p_w) in m3/day, the cumulative production the sum of
-q dt. Summing the cell equations, the interior fluxes cancel, so the cumulative equals the
-depletion sum_i PV_i c_t (p_initial - p_i) exactly (to the round-off of the solves).
+q = sum_i (T_b,i / mu) (p_i^{n+1} - p_w) in m3/day, the cumulative production Q its
+integral by the same formula: a Q^{n+1} - b Q^n + c Q^{n-1} = dt q^{n+1}, Q^0 = 0 (for
+implicit Euler the sum of q dt). Summing the cell equations, the interior fluxes cancel, so
+the cumulative equals the depletion sum_i PV_i c_t (p_initial - p_i) exactly (to the
+round-off of the solves).
 
 Drainage set-ups:
 
@@ -465,43 +477,53 @@ def time_grid(first: float, end: float, steps_per_doubling: int = 8) -> np.ndarr
     return np.concatenate(times)
 
 
-def projected_guess(A, b: np.ndarray, vectors) -> np.ndarray:
+def projected_guess(b: np.ndarray, vectors, products) -> np.ndarray:
     """The A-norm best approximation of the solution of ``A x = b`` in the span of ``vectors``.
 
-    x0 = W (W^T A W)^-1 W^T b with W an orthonormal basis of the span (nearly dependent
+    x0 = V c with (V^T A V) c = V^T b, solved on the eigenvectors of the Gram matrix scaled
+    to unit diagonal whose eigenvalues are above 1e-12 of the largest (nearly dependent
     directions dropped). Successive time steps have nearly the same solution space, so CG
-    from x0 needs far fewer iterations (Fischer 1998, Projection techniques for iterative
+    from x0 needs fewer iterations (Fischer 1998, Projection techniques for iterative
     solution of Ax = b with successive right-hand sides, Comput. Methods Appl. Mech.
-    Engrg. 163; from memory).
+    Engrg. 163; from memory). Only the small Gram matrix is factorised: the products A v
+    are the caller's, who can keep them from step to step.
 
     Parameters
     ----------
-    A : sparse matrix or ndarray, (n, n)
-        Symmetric positive definite.
     b : ndarray, (n,)
     vectors : sequence of ndarray, (n,) each
+    products : sequence of ndarray, (n,) each
+        A v for each of ``vectors``, A symmetric positive definite.
 
     Returns
     -------
     ndarray, (n,)
         x0; zeros if the span is empty.
     """
-    W, R = np.linalg.qr(np.column_stack(vectors))
-    keep = np.abs(np.diag(R)) > 1e-10 * np.abs(np.diag(R)).max(initial=0.0)
-    if not keep.any():
+    V, AV = np.column_stack(vectors), np.column_stack(products)
+    gram = V.T @ AV
+    gram = 0.5 * (gram + gram.T)
+    diagonal = np.diag(gram).copy()
+    used = diagonal > 0
+    if not used.any():
         return np.zeros_like(b)
-    W = W[:, keep]
-    gram = W.T @ (A @ W)
-    return W @ np.linalg.solve(gram, W.T @ b)
+    scale = 1.0 / np.sqrt(diagonal[used])
+    values, modes = np.linalg.eigh(gram[np.ix_(used, used)] * np.outer(scale, scale))
+    kept = values > 1e-12 * values[-1]
+    modes = modes[:, kept]
+    coefficients = scale * (modes @ ((modes.T @ (scale * (V[:, used].T @ b))) / values[kept]))
+    return V[:, used] @ coefficients
 
 
 class _StepSolver:
     """Solves (diag(storage / dt) + K) u = rhs for each step dt, the last ``keep`` steps'
     solvers kept (one by default: :func:`time_grid` repeats each step before it grows, and
     a kept solver of a 1 M-cell model holds a few hundred MB). Small systems: sparse LU of
-    the matrix scaled to unit diagonal, one per distinct dt. Large ones: CG preconditioned by multigrid cycles that share one set-up for every dt
+    the matrix scaled to unit diagonal, one per distinct dt. Large ones: CG preconditioned
+    by multigrid cycles that share one set-up for every dt
     (:class:`upscale.core.multigrid.ShiftedCycles`), started from :func:`projected_guess`
-    over the last pressure and the last ``REMEMBER`` solutions."""
+    over the last ``REMEMBER`` solutions (the start pressure at the first step), each kept
+    with its product K x so that a step costs one product more than its CG."""
 
     REMEMBER = 6
 
@@ -516,7 +538,7 @@ class _StepSolver:
         self.factorisations = 0
         self.iterations = 0
         self.worst_residual = 0.0
-        self.history: list[np.ndarray] = []  # the last solutions, newest first
+        self.history: list[tuple] = []  # the last solutions x and their K x, newest first
 
     def _prepare(self, dt: float):
         """The matrix of step dt and its solver: (LU, scale) or (multigrid cycle, None); cached."""
@@ -556,17 +578,20 @@ class _StepSolver:
         if self.direct:
             x, _ = refined_direct(A, solver, scale, rhs, self.tolerance, refinements=2)
         else:
-            x = self._iterate(A, solver, rhs, u)
+            x = self._iterate(A, solver, rhs, u, dt)
         residual = float(np.linalg.norm(rhs - A @ x) / norm)
         self.worst_residual = max(self.worst_residual, residual)
         return x, dt
 
-    def _iterate(self, A, cycle, rhs, u) -> np.ndarray:
-        """CG on A x = rhs from the projected guess, to the relative residual tolerance."""
-        x, count = conjugate_gradients(A, rhs, projected_guess(A, rhs, [u, *self.history]), cycle, self.tolerance,
-                                       maxiter=1000)
+    def _iterate(self, A, cycle, rhs, u, dt: float) -> np.ndarray:
+        """CG on A x = rhs from the projected guess over the last solutions (or u at the first
+        step), to the relative residual tolerance. A v = K v + storage v / dt from each kept
+        solution's K v."""
+        kept = self.history or [(u, self.K @ u)]
+        guess = projected_guess(rhs, [v for v, _ in kept], [Kv + self.storage / dt * v for v, Kv in kept])
+        x, count = conjugate_gradients(A, rhs, guess, cycle, self.tolerance, maxiter=1000)
         self.iterations += count
-        self.history = [x, *self.history[:self.REMEMBER - 1]]
+        self.history = [(x, self.K @ x), *self.history[:self.REMEMBER - 1]]
         return x
 
 
@@ -589,15 +614,16 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
              p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
              viscosity: float = DEFAULT_VISCOSITY, keep_pressures: bool = False,
              direct_limit: int = DIRECT_LIMIT, tolerance: float = 1e-10) -> dict:
-    """Drain ``system`` from a uniform ``p_initial`` at ``p_drain``, each step implicit Euler.
+    """Drain ``system`` from a uniform ``p_initial`` at ``p_drain``, in BDF2 steps (the first implicit Euler).
 
     Systems with at most ``direct_limit`` unknowns are solved by sparse LU (SuperLU in
     symmetric mode, refined up to twice while the relative residual is above ``tolerance``),
     larger ones by conjugate gradients preconditioned by smoothed-aggregation multigrid cycles (to
-    ``tolerance``, started from a projection on the last pressures): one LU per distinct
-    step, the last four kept, or one AMG set-up for all steps, whose levels take each
-    step's storage term exactly. The cumulative-versus-depletion
-    identity holds to about the solves' residual.
+    ``tolerance``, started from a projection on the last pressures): one LU per change of
+    the matrix (K + diag(storage) a / dt: two per doubling phase of :func:`time_grid`, its
+    first step and the repeated ones), or one AMG set-up for all steps, whose levels take
+    each step's storage term exactly. The cumulative-versus-depletion identity holds to
+    about the solves' residual.
 
     Parameters
     ----------
@@ -629,7 +655,7 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
         residual); with ``keep_pressures``, 'pressures' (nt, nx, ny, nz).
     """
     times = _checked_run(times_days, p_initial, p_drain, compressibility, viscosity)
-    # the system on the cells with a defined pressure, then implicit Euler steps through the times
+    # the system on the cells with a defined pressure, then BDF2 steps through the times
     solved, K, drain = _solved_system(system, viscosity)
     storage = system.pore_volume.ravel()[solved] * compressibility
     solver = _StepSolver(K, storage, direct_limit, tolerance)
@@ -672,20 +698,44 @@ def _solved_system(system: TransientSystem, viscosity: float):
     return solved, K, drain
 
 
+def backward_difference(step: float, previous: float | None) -> tuple[float, float, float]:
+    """The coefficients (a, b, c) of a step's formula (see the module notes).
+
+    Parameters
+    ----------
+    step, previous : float
+        This step and the one before it (same unit); ``previous`` None for the first step.
+
+    Returns
+    -------
+    tuple of float
+        (3/2, 2, 1/2), BDF2, where ``step`` repeats ``previous`` (to a relative 1e-9);
+        otherwise (1, 1, 0), implicit Euler. Always a - b + c = 0.
+    """
+    if previous is None or abs(step - previous) > 1e-9 * previous:
+        return 1.0, 1.0, 0.0
+    return 1.5, 2.0, 0.5
+
+
 def _march(solver: _StepSolver, times, drain, storage, p_initial, p_drain, solved, size) -> dict:
-    """Step from the initial pressure through ``times``: 'time', 'rate', 'cumulative' and
-    'depletion' at each time, the last pressure above p_drain 'u' and, given the model
-    ``size``, the 'pressures' of every cell at each time (NaN outside the system)."""
+    """Step from the initial pressure through ``times`` (BDF2): 'time', 'rate', 'cumulative'
+    and 'depletion' at each time, the last pressure above p_drain 'u' and, given the model
+    ``size``, the 'pressures' of every cell at each time (NaN outside the system).
+
+    A step solves (K + diag(storage) a / dt) u^{n+1} = diag(storage) a / dt v with
+    v = (b u^n - c u^{n-1}) / a: the implicit Euler system of the step dt / a from v."""
     u = np.full(solved.size, float(p_initial) - float(p_drain))   # pressure above the drainage pressure
-    u0 = u.copy()
+    u0, before = u.copy(), u
     rate, cumulative, depletion = np.zeros(times.size), np.zeros(times.size), np.zeros(times.size)
     pressures = None if size is None else np.full((times.size, size), np.nan)
-    total, previous = 0.0, 0.0
+    previous_time, previous_step, total, total_before = 0.0, None, 0.0, 0.0
     for n, t in enumerate(times):
-        u, dt = solver.step(t - previous, u)
-        previous = t
+        a, b, c = backward_difference(t - previous_time, previous_step)
+        start = u if c == 0.0 else (b * u - c * before) / a
+        before, (u, shortened) = u, solver.step((t - previous_time) / a, start)
+        previous_step, previous_time = shortened * a, t
         rate[n] = float(drain @ u)
-        total += rate[n] * dt
+        total, total_before = (b * total - c * total_before + previous_step * rate[n]) / a, total
         cumulative[n] = total
         depletion[n] = float(storage @ (u0 - u))
         if pressures is not None:

@@ -100,7 +100,7 @@ def _transient_section(metrics: dict) -> str:
             ["pore volume, relative difference", t.get("pore_volume_relative_difference")],
             ["fine: drained fraction at the end", (t.get("fine") or {}).get("drained_fraction_end")],
             ["coarse: drained fraction at the end", (t.get("coarse") or {}).get("drained_fraction_end")]]
-    return ("<p>Slightly compressible single-phase drainage, implicit Euler in time: a test of pore "
+    return ("<p>Slightly compressible single-phase drainage, second order in time (BDF2): a test of pore "
             "volumes and transmissibilities together.</p>" + table(["quantity", "value"], rows, 1))
 
 
