@@ -614,7 +614,7 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
              p_drain: float = DEFAULT_P_DRAIN, compressibility: float = DEFAULT_COMPRESSIBILITY,
              viscosity: float = DEFAULT_VISCOSITY, keep_pressures: bool = False,
              direct_limit: int = DIRECT_LIMIT, tolerance: float = 1e-10) -> dict:
-    """Drain ``system`` from a uniform ``p_initial`` at ``p_drain``, in BDF2 steps (the first implicit Euler).
+    """Drain ``system`` from a uniform ``p_initial`` at ``p_drain`` (BDF2 on repeated steps, see the module notes).
 
     Systems with at most ``direct_limit`` unknowns are solved by sparse LU (SuperLU in
     symmetric mode, refined up to twice while the relative residual is above ``tolerance``),
@@ -655,7 +655,7 @@ def simulate(system: TransientSystem, times_days, p_initial: float = DEFAULT_P_I
         residual); with ``keep_pressures``, 'pressures' (nt, nx, ny, nz).
     """
     times = _checked_run(times_days, p_initial, p_drain, compressibility, viscosity)
-    # the system on the cells with a defined pressure, then BDF2 steps through the times
+    # the system on the cells with a defined pressure, then the steps through the times
     solved, K, drain = _solved_system(system, viscosity)
     storage = system.pore_volume.ravel()[solved] * compressibility
     solver = _StepSolver(K, storage, direct_limit, tolerance)
@@ -718,8 +718,8 @@ def backward_difference(step: float, previous: float | None) -> tuple[float, flo
 
 
 def _march(solver: _StepSolver, times, drain, storage, p_initial, p_drain, solved, size) -> dict:
-    """Step from the initial pressure through ``times`` (BDF2): 'time', 'rate', 'cumulative'
-    and 'depletion' at each time, the last pressure above p_drain 'u' and, given the model
+    """Step from the initial pressure through ``times`` (the module notes' formula): 'time',
+    'rate', 'cumulative' and 'depletion' at each time, the last pressure above p_drain 'u' and, given the model
     ``size``, the 'pressures' of every cell at each time (NaN outside the system).
 
     A step solves (K + diag(storage) a / dt) u^{n+1} = diag(storage) a / dt v with
@@ -732,8 +732,8 @@ def _march(solver: _StepSolver, times, drain, storage, p_initial, p_drain, solve
     for n, t in enumerate(times):
         a, b, c = backward_difference(t - previous_time, previous_step)
         start = u if c == 0.0 else (b * u - c * before) / a
-        before, (u, shortened) = u, solver.step((t - previous_time) / a, start)
-        previous_step, previous_time = shortened * a, t
+        before, (u, taken) = u, solver.step((t - previous_time) / a, start)  # taken: a cached step within 1e-12
+        previous_step, previous_time = taken * a, t
         rate[n] = float(drain @ u)
         total, total_before = (b * total - c * total_before + previous_step * rate[n]) / a, total
         cumulative[n] = total
