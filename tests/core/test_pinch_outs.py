@@ -78,8 +78,8 @@ def test_the_transient_drainage_of_a_pinched_column_is_that_of_the_stacked_one()
     # A pinched cell has no pore volume: eliminating it from the implicit system joins its
     # two neighbours by exactly the series pair (a Schur complement), so the drainage
     # through the top face, where two pinched cells lie, is that of the column without
-    # them. Tolerance: the CG of each step stops at 1e-8 (transient.CHECK_SOLVE_TOLERANCE);
-    # the direct solves here are refined to about 1e-12; rates agree to 1e-9 relative.
+    # them. Tolerance: the direct solves here are refined to about 1e-12 (simulate's
+    # default tolerance, 1e-10); rates agree to 1e-9 relative.
     k, dz = [0.0, 0.0, 50.0, 0.0, 5.0, 400.0], [0.0, 0.0, 2.0, 0.0, 1.0, 3.0]
     pinched = TransientSystem.from_fine(arrays(validate(_column(k, dz))), face="z-")
     stacked = TransientSystem.from_fine(arrays(validate(_column([50.0, 5.0, 400.0], [2.0, 1.0, 3.0]))), face="z-")

@@ -110,10 +110,13 @@ DEFAULT_SPAN = (1e-3, 3.0)
 BALANCE_WARNING = 1e-6
 
 
-#: Relative residual of each time step's solve in :func:`upscale.checks.transient.transient_check`:
-#: rates and cumulatives are then exact to about 1e-8, far below the fine-versus-coarse
-#: differences the check measures.
-CHECK_SOLVE_TOLERANCE = 1e-8
+#: Relative residual of each time step's solve in :func:`upscale.checks.transient.transient_check`.
+#: The pressure is solved above the drainage pressure, so the residual is relative to what
+#: is left to drain and late rates keep their relative accuracy: rates and cumulatives then
+#: differ from those of exact solves by a few times this, orders of magnitude below the time
+#: error of the steps and the fine-versus-coarse differences the check measures
+#: (``test_the_check_tolerance_is_far_below_the_time_error``).
+CHECK_SOLVE_TOLERANCE = 1e-6
 
 
 @dataclass(frozen=True, eq=False)
