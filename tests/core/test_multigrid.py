@@ -119,9 +119,10 @@ def test_one_set_up_serves_every_step_of_a_storage_shifted_family():
         galerkin = A
         # the family's transfers: those of the set-up of its first member (dt = 1)
         _, prolongators, restrictors = aggregation_hierarchy((K + sp.diags(storage)).tocsr())
+        members = family.levels(dt)
         for level, (P, R) in enumerate(zip(prolongators, restrictors)):
             galerkin = R @ galerkin @ P
-            member = family.stiffness[level + 1] + family.storage[level + 1] / dt
+            member = members[level + 1]
             assert abs(member - galerkin).max() <= 1e-12 * abs(galerkin).max(), (dt, level)
             # the cycle's copy, in single precision: to its rounding (epsilon 6e-8 relative)
             assert abs(cycle.operators[level + 1] - galerkin).max() <= 1e-6 * abs(galerkin).max(), (dt, level)

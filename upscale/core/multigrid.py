@@ -286,8 +286,9 @@ class ShiftedCycles:
     The aggregates and prolongators come from one smoothed-aggregation set-up
     (:func:`aggregation_hierarchy`) of the first member, K + diag(storage) / dt; each level
     keeps its Galerkin stiffness K_l = R_l K_{l-1} P_l and storage S_l = R_l S_{l-1} P_l, so
-    a member's levels are exactly K_l + S_l / dt for any step dt, at the cost of a sparse
-    sum per level instead of a new set-up.
+    a member's levels are exactly K_l + S_l / dt for any step dt. Both are held on one
+    sorted pattern per level, so a member costs a sum of value arrays per level instead of
+    a new set-up.
 
     Parameters
     ----------
@@ -302,15 +303,39 @@ class ShiftedCycles:
     def __init__(self, stiffness, storage: np.ndarray, dt: float):
         stiffness = sp.csr_matrix(stiffness)
         _, prolongators, restrictors = aggregation_hierarchy(stiffness + sp.diags(storage / dt))
-        self.stiffness, self.storage = [stiffness], [sp.diags(storage).tocsr()]
+        stiffnesses, storages = [stiffness], [sp.diags(storage).tocsr()]
         # K_l is made on its own, not as the set-up's level minus S_l / dt: at the first (the
         # smallest) step the storage term dominates, and the difference would cancel
         for P, R in zip(prolongators, restrictors):
-            self.stiffness.append((R @ self.stiffness[-1] @ P).tocsr())
-            self.storage.append((R @ self.storage[-1] @ P).tocsr())
+            stiffnesses.append((R @ stiffnesses[-1] @ P).tocsr())
+            storages.append((R @ storages[-1] @ P).tocsr())
+        # each level's K_l and S_l on one sorted pattern, so that a member's level is a sum
+        # of two value arrays (no sparse sum, no sort per step)
+        self._patterns = [_common_pattern(K, S) for K, S in zip(stiffnesses, storages)]
         # only the transfers in the cycles' precision are kept, made once for every member
         self._transfers = ([_in_precision(P, CYCLE_PRECISION) for P in prolongators],
                            [_in_precision(R, CYCLE_PRECISION) for R in restrictors])
+
+    def levels(self, dt: float, precision=np.float64) -> list:
+        """The member's level operators K_l + S_l / dt, finest first.
+
+        Parameters
+        ----------
+        dt : float
+            > 0, in the unit of the storage's time.
+        precision : numpy dtype
+            The operators' value type.
+
+        Returns
+        -------
+        list of scipy.sparse.csr_matrix
+        """
+        operators = []
+        for indptr, indices, k, s in self._patterns:
+            level = sp.csr_matrix(((k + s / dt).astype(precision), indices, indptr), shape=(indptr.size - 1,) * 2)
+            level.has_sorted_indices = True
+            operators.append(level)
+        return operators
 
     def cycle(self, dt: float) -> MultigridCycle:
         """The cycle of K + diag(storage) / dt.
@@ -325,8 +350,21 @@ class ShiftedCycles:
         MultigridCycle
         """
         # each level made in the cycles' precision at once, so that no second full set is held
-        operators = [_in_precision(K + S / dt, CYCLE_PRECISION) for K, S in zip(self.stiffness, self.storage)]
-        return MultigridCycle.from_levels(operators, *self._transfers, visits=STEP_SECOND_LEVEL_VISITS)
+        return MultigridCycle.from_levels(self.levels(dt, CYCLE_PRECISION), *self._transfers,
+                                          visits=STEP_SECOND_LEVEL_VISITS)
+
+
+def _common_pattern(A: sp.spmatrix, B: sp.spmatrix):
+    """Two matrices of one shape on the union of their patterns, sorted: (indptr, indices,
+    A's values, B's values), with A + B = csr((A's + B's values, indices, indptr))."""
+    A, B = sp.coo_matrix(A), sp.coo_matrix(B)
+    rows, columns = np.concatenate([A.row, B.row]), np.concatenate([A.col, B.col])
+    zeros_a, zeros_b = np.zeros(A.nnz), np.zeros(B.nnz)
+    on_pattern = [sp.csr_matrix((np.concatenate(values), (rows, columns)), shape=A.shape)
+                  for values in ((A.data, zeros_b), (zeros_a, B.data))]
+    for M in on_pattern:  # the same coordinates summed and sorted alike: one pattern
+        M.sum_duplicates()
+    return on_pattern[0].indptr, on_pattern[0].indices, on_pattern[0].data, on_pattern[1].data
 
 
 def scaled_near_null(scale: np.ndarray) -> np.ndarray:
