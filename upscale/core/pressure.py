@@ -348,11 +348,11 @@ def refined_direct(A, lu, scale: np.ndarray, b: np.ndarray, tolerance: float, re
         Refinement steps made.
     """
     p = scale * lu.solve(scale * b)
-    steps = 0
-    while steps < refinements and _relative_residual(A, b, p) > tolerance:
+    for steps in range(refinements):  # a bounded loop: no residual can keep it going
+        if _relative_residual(A, b, p) <= tolerance:
+            return p, steps
         p += scale * lu.solve(scale * (b - A @ p))
-        steps += 1
-    return p, steps
+    return p, refinements
 
 
 def _amg_cg(A, scaled, scale, b, tolerance, restarts: int = 6, maxiter: int = 1000):
