@@ -72,3 +72,54 @@ def test_products_into_buffers_match_scipy(rows, columns, density, seed, single)
         out = np.full(rows, np.nan, dtype=dtype)
         residual_into(A, v, b, out)
         assert np.all(np.abs(out - (b - A @ v)) <= tolerance * (scale + np.abs(b)))
+
+
+def test_cg_after_a_set_number_of_steps_is_scipys_iterate_of_that_step():
+    # Stopped by maxiter before converging, our x is SciPy's k-th iterate (its callback
+    # receives x_k after each step k), to round-off (1e-8 of its size; the iterates of
+    # steps k - 1 and k + 1 differ from it by far more, which the last line shows).
+    A = heterogeneous_laplacian(shape=(12, 10, 8))
+    b = np.random.default_rng(7).normal(size=A.shape[0])
+    M = MultigridCycle(A)
+    iterates = []
+    spla.cg(A, b, x0=np.zeros_like(b), rtol=1e-30, atol=0.0, maxiter=6, M=M,
+            callback=lambda xk: iterates.append(xk.copy()))
+    assert len(iterates) == 6
+    for steps in (1, 4):
+        x, taken = conjugate_gradients(A, b, np.zeros_like(b), M, rtol=1e-30, maxiter=steps)
+        assert taken == steps
+        size = np.abs(iterates[steps - 1]).max()
+        np.testing.assert_allclose(x, iterates[steps - 1], rtol=0, atol=1e-8 * size)
+        assert np.abs(iterates[steps] - iterates[steps - 1]).max() > 1e-4 * size
+
+
+def test_a_single_precision_start_still_gives_a_double_precision_solution():
+    # The start only seeds the iterate: a float32 x0 must not make the recurrence run in
+    # float32, whose residual cannot fall much below its epsilon (1.2e-7) times ||b||.
+    A = heterogeneous_laplacian(shape=(10, 9, 7))
+    b = np.random.default_rng(8).normal(size=A.shape[0])
+    x, _ = conjugate_gradients(A, b, np.zeros(b.size, dtype=np.float32), MultigridCycle(A), rtol=1e-11, maxiter=200)
+    assert x.dtype == np.float64
+    assert np.linalg.norm(b - A @ x) <= 1e-11 * np.linalg.norm(b)
+
+
+class _Identity:
+    def apply(self, r, out):
+        out[:] = r
+
+
+@pytest.mark.parametrize("diagonal, expected, steps", [
+    ([1.0, -1.0], [0.0, 0.0], 0),
+    ([1.0, 1.0, -1.0], [3.0, 3.0, 3.0], 1),
+])
+def test_cg_stops_with_its_last_iterate_where_the_curvature_is_not_positive(diagonal, expected, steps):
+    # Worked by hand from the recurrence (Hestenes & Stiefel 1952), no preconditioner,
+    # A = diag(diagonal), b = ones, x0 = 0, so r0 = p0 = b.
+    # diag(1, -1): p0^T A p0 = 1 - 1 = 0: stop at once with x0.
+    # diag(1, 1, -1): p0^T A p0 = 1 > 0, alpha = r0^T r0 / 1 = 3, x1 = 3 b, r1 = b - 3 A b =
+    #   (-2, -2, 4), beta = 24 / 3 = 8, p1 = r1 + 8 b = (6, 6, 12), p1^T A p1 = 36 + 36 - 144
+    #   < 0: stop after one step with x1.
+    A, b = sp.diags(diagonal).tocsr(), np.ones(len(diagonal))
+    x, taken = conjugate_gradients(A, b, np.zeros_like(b), _Identity(), rtol=1e-12, maxiter=10)
+    assert taken == steps
+    np.testing.assert_array_equal(x, expected)
