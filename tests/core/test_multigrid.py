@@ -8,6 +8,7 @@ import scipy.sparse.linalg as spla
 
 from upscale.core.multigrid import (MAX_COARSE, LineSmoother, MultigridCycle, ShiftedCycles, aggregation_hierarchy,
                                     largest_eigenvalue, scaled_near_null, tentative_prolongator)
+from upscale.core.multigrid import _gauss_seidel
 
 
 def heterogeneous_laplacian(shape=(14, 12, 9), seed=3, with_scale=False):
@@ -128,6 +129,7 @@ def test_one_set_up_serves_every_step_of_a_storage_shifted_family():
     for dt in (1e-2, 1.0, 10.0):
         A = (K + sp.diags(storage / dt)).tocsr()
         cycle = family.cycle(dt)
+        assert cycle.precision == np.float32  # the steps' cycles run in single precision
         galerkin = A
         # the family's transfers: those of the set-up of its first member (dt = 0.1)
         _, prolongators, restrictors = aggregation_hierarchy((K + sp.diags(storage / 0.1)).tocsr())
@@ -178,3 +180,51 @@ def test_tentative_prolongator_is_orthonormal_and_reproduces_the_candidate():
     np.testing.assert_allclose((T.T @ T).toarray(), np.eye(T.shape[1]), atol=1e-13)
     np.testing.assert_allclose(T @ coarse, candidate, rtol=1e-13)
     assert np.all(np.diff(T.indptr) == 1)
+
+
+def test_lanczos_estimate_is_exact_when_the_space_is_exhausted():
+    # The 1D Laplacian of four cells, tridiag(-1, 2, -1): D^-1 A = I - T / 2 with the path's
+    # adjacency T, whose eigenvalues are 2 cos(k pi / 5), k = 1..4 (Strang 2007,
+    # Computational Science and Engineering, section 1.5, from memory). Ten steps on four
+    # unknowns exhaust the space (the recurrence breaks down at the fourth), so the
+    # estimate is the exact largest eigenvalue 1 + cos(pi / 5), to round-off.
+    A = sp.diags([-np.ones(3), 2 * np.ones(4), -np.ones(3)], [-1, 0, 1]).tocsr()
+    assert abs(largest_eigenvalue(A, steps=10) - (1 + np.cos(np.pi / 5))) <= 1e-12
+
+
+def test_coarsening_stops_where_the_options_and_the_aggregates_say():
+    # max_levels caps the hierarchy; a matrix without couplings has nothing to aggregate
+    # (pyamg's standard aggregation leaves unknowns without neighbours out), so it stays one
+    # level, not one over an empty aggregate with a zero operator; a complete graph is one aggregate,
+    # a single coarse unknown whose operator is P^T A P. A single-precision input is set up
+    # in double precision (the levels and transfers returned are float64).
+    A = heterogeneous_laplacian(shape=(12, 10, 8))
+    operators, prolongators, _ = aggregation_hierarchy(A.astype(np.float32), np.ones(A.shape[0], np.float32),
+                                                       max_coarse=1, max_levels=2)
+    assert len(operators) == 2 and len(prolongators) == 1
+    assert all(M.dtype == np.float64 for M in operators + prolongators)
+    assert len(aggregation_hierarchy(A, max_coarse=1, max_levels=3)[0]) == 3
+    diagonal = sp.diags(np.linspace(1.0, 2.0, 40)).tocsr()
+    operators, prolongators, _ = aggregation_hierarchy(diagonal, max_coarse=1)
+    assert len(operators) == 1 and prolongators == []
+    dense = sp.csr_matrix(np.full((6, 6), -1.0) + 7.0 * np.eye(6))  # diagonally dominant: SPD
+    operators, prolongators, _ = aggregation_hierarchy(dense, max_coarse=1)
+    assert [M.shape for M in operators] == [(6, 6), (1, 1)]
+    P = prolongators[0].toarray()
+    np.testing.assert_allclose(operators[1].toarray(), P.T @ dense.toarray() @ P, rtol=1e-13)
+
+
+def test_gauss_seidel_sweeps_match_the_textbook_recurrence():
+    # x_i <- (b_i - sum_{j != i} a_ij x_j) / a_ii, rows taken in order or in reverse (Saad
+    # 2003, section 4.1, from memory), against a plain loop over a dense copy.
+    A = heterogeneous_laplacian(shape=(5, 4, 3))
+    rng = np.random.default_rng(11)
+    b, start = rng.normal(size=A.shape[0]), rng.normal(size=A.shape[0])
+    dense = A.toarray()
+    for forward in (True, False):
+        expected = start.copy()
+        for i in (range(A.shape[0]) if forward else reversed(range(A.shape[0]))):
+            expected[i] = (b[i] - dense[i] @ expected + dense[i, i] * expected[i]) / dense[i, i]
+        x = start.copy()
+        _gauss_seidel(A, x, b, forward)
+        np.testing.assert_allclose(x, expected, rtol=1e-12, atol=1e-12)

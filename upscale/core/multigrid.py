@@ -71,7 +71,7 @@ def aggregation_hierarchy(matrix, near_null: np.ndarray | None = None, max_coars
         The smooth vector the matrix nearly annihilates (ones if None).
     max_coarse, max_levels : int
         Coarsening stops at or below ``max_coarse`` unknowns, after ``max_levels`` levels, or
-        when a level no longer shrinks.
+        at a level whose unknowns have no neighbours (one aggregate would take none of them).
 
     Returns
     -------
@@ -86,7 +86,9 @@ def aggregation_hierarchy(matrix, near_null: np.ndarray | None = None, max_coars
     while operators[-1].shape[0] > max_coarse and len(operators) < max_levels:
         A = operators[-1]
         T, coarse_candidate = tentative_prolongator(A, candidate)
-        if not 0 < T.shape[1] < A.shape[0]:
+        # no unknown has a neighbour: nothing to coarsen (an aggregate has two unknowns or
+        # more, so any other level shrinks, and max_levels caps the count)
+        if T.nnz == 0:
             break
         AT = (A @ T).tocsr()
         AT.data *= np.repeat(PROLONGATION_WEIGHT / (largest_eigenvalue(A) * A.diagonal()), np.diff(AT.indptr))
