@@ -71,7 +71,7 @@ def aggregation_hierarchy(matrix, near_null: np.ndarray | None = None, max_coars
         The smooth vector the matrix nearly annihilates (ones if None).
     max_coarse, max_levels : int
         Coarsening stops at or below ``max_coarse`` unknowns, after ``max_levels`` levels, or
-        at a level whose unknowns have no neighbours (one aggregate would take none of them).
+        at a level none of whose unknowns has a neighbour (nothing to aggregate).
 
     Returns
     -------
