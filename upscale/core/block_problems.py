@@ -492,7 +492,7 @@ def _face_values(domain, couplings: Couplings, p, boundary: Boundary, bc: str, c
     fluxes, pressures = [], []
     for a in range(3):
         n = domain.shape[a]
-        h = couplings.half[a]
+        h, length = couplings.half[a], domain.lengths[a]
         first, last = _take(p, a, 0), _take(p, a, n - 1)
         h_first, h_last = _take(h, a, 0), _take(h, a, n - 1)
         pl, pr = _take(p, a, slice(0, n - 1)), _take(p, a, slice(1, n))
@@ -510,12 +510,14 @@ def _face_values(domain, couplings: Couplings, p, boundary: Boundary, bc: str, c
             image = first - jump
             q_lo = q_hi = couplings.wrap[a] * (last - image)
             if with_pressure:
-                p_hi = _interpolate(h_last, last, h_first, image, q_hi, _pinched_ends(domain, a, n - 1, 0))
+                p_hi = _interpolate((h_last, last, _take(length, a, n - 1)), (h_first, image, _take(length, a, 0)),
+                                    q_hi, _pinched_ends(domain, a, n - 1, 0))
                 p_lo = p_hi + jump
         fluxes.append(np.concatenate([q_lo, q_in, q_hi], axis=a + 1))
         if with_pressure:
             pinched = _pinched_ends(domain, a, slice(0, n - 1), slice(1, n))
-            p_in = _interpolate(_take(h, a, slice(0, n - 1)), pl, _take(h, a, slice(1, n)), pr, q_in, pinched)
+            p_in = _interpolate((_take(h, a, slice(0, n - 1)), pl, _take(length, a, slice(0, n - 1))),
+                                (_take(h, a, slice(1, n)), pr, _take(length, a, slice(1, n))), q_in, pinched)
             pressures.append(np.concatenate([p_lo, p_in, p_hi], axis=a + 1))
     return fluxes, (pressures if with_pressure else None)
 
@@ -529,15 +531,19 @@ def _pinched_ends(domain: LocalDomain, a: int, first, second):
     return _take(pinched, a, first), _take(pinched, a, second)
 
 
-def _interpolate(h1, p1, h2, p2, q=None, pinched=None):
-    """Face pressure where the two half-cell fluxes balance; the mean where both h are 0.
+def _interpolate(side1, side2, q, pinched):
+    """Face pressure where the two half-cell fluxes balance.
 
-    With ``pinched`` (the masks of the two sides) and the flux ``q`` from side 1 to side 2:
-    on a face between a real cell and a pinched one (a pinch-out connection), the real
-    cell's pressure less the drop over its own half, p1 - q / h1 (or p2 + q / h2): the
-    pressure on the face it would share with the real cell across the run."""
-    total = h1 + h2
-    out = 0.5 * (p1 + p2)
+    Each side is (h, p, l): half transmissibility, cell pressure and cell length along the
+    face normal. Where both h are 0 no flux crosses the face: the pressure linear between
+    the two cell centres (the mean where both cells are pinched). With ``pinched`` (the
+    masks of the two sides, or None) and the flux ``q`` from side 1 to side 2: on a face
+    between a real cell and a pinched one (a pinch-out connection), the real cell's
+    pressure less the drop over its own half, p1 - q / h1 (or p2 + q / h2): the pressure on
+    the face it would share with the real cell across the run."""
+    (h1, p1, l1), (h2, p2, l2) = side1, side2
+    total, span = h1 + h2, l1 + l2
+    out = np.divide(l2 * p1 + l1 * p2, span, out=0.5 * (p1 + p2), where=span > 0)
     np.divide(h1 * p1 + h2 * p2, total, out=out, where=total > 0)
     if pinched is None:
         return out
@@ -549,11 +555,17 @@ def _interpolate(h1, p1, h2, p2, q=None, pinched=None):
 
 
 def _target_averages(domain: LocalDomain, fluxes, pressures, connected):
-    """Volume-averaged velocity and pressure gradient over the target block (nb, 3) each;
-    the gradient is 0 when no face pressures are given (it is then imposed, not measured)."""
+    """Volume-averaged velocity and pressure gradient over the target block (nb, 3) each.
+
+    The velocity is averaged over the whole target, the gradient over its cells connected
+    to the boundary data: a cell without flow (closed, or a pocket) has no pressure of its
+    own, and the gradient around it stands for it, as a pressure continuous across it would
+    (a closed layer then counts as 0 in the mean along the layers, as without a border).
+    The gradient is 0 when no face pressures are given (it is then imposed, not measured)."""
     t = domain.target
     volume = domain.volume
     v_target = volume[(slice(None),) + t].reshape(domain.count, -1).sum(axis=1)
+    v_connected = (volume * connected)[(slice(None),) + t].reshape(domain.count, -1).sum(axis=1)
     velocity, gradient = [], []
     for a in range(3):
         n = domain.shape[a]
@@ -569,7 +581,8 @@ def _target_averages(domain: LocalDomain, fluxes, pressures, connected):
         cell_drop = area * (_take(pf, a, slice(1, n + 1)) - _take(pf, a, slice(0, n))) * connected
         gradient.append(cell_drop[(slice(None),) + t].reshape(domain.count, -1).sum(axis=1))
     scale = np.where(v_target > 0, v_target, 1.0)[:, None]
-    return np.stack(velocity, axis=1) / scale, np.stack(gradient, axis=1) / scale
+    connected_scale = np.where(v_connected > 0, v_connected, 1.0)[:, None]
+    return np.stack(velocity, axis=1) / scale, np.stack(gradient, axis=1) / connected_scale
 
 
 @dataclass
