@@ -617,3 +617,32 @@ def test_a_periodic_block_over_the_whole_column_with_its_end_layer_pinched(pinch
 
     whole, stacked = tensors(np.s_[:, :, :]), tensors(np.s_[:, :, kept])
     np.testing.assert_allclose(whole, stacked, rtol=0, atol=1e-10 * np.abs(stacked).max())
+
+
+@pytest.mark.parametrize("bc", ["sealed", "linear"])
+def test_pockets_and_dead_ends_with_a_border_count_as_closed_cells(bc):
+    # Cells that carry no flow whatever the pressure drop: a pocket of live cells closed
+    # in on all sides, and a cell on the model's inlet face open along x only whose
+    # neighbour along x is closed (a dead end joined to the boundary alone). With a ring
+    # the gradient is measured over the block's connected cells; such cells are not among
+    # them, so every tensor equals that of the same field with them closed (k = 0), as
+    # without a ring (test_isolated_pocket_is_left_out). Rounding of direct solves: 1e-12.
+    rng = np.random.default_rng(17)
+    shape = (9, 9, 5)
+    k = lognormal(shape, 1.0, 17) * 20.0
+    k[2:7, 2:7, 1:4] = 0.0
+    k[3:6, 4, 2] = 50.0  # the pocket: three live cells in a row
+    kx, ky, kz = k.copy(), k.copy(), k.copy()
+    kx[1, 1, 2] = ky[0, 1, 2] = kz[0, 1, 2] = ky[1, 1, 2] = kz[1, 1, 2] = 0.0  # the dead end at (0, 1, 2)
+    sizes = dict(dx=rng.uniform(0.5, 2.0, 9), dy=rng.uniform(0.5, 2.0, 9), dz=rng.uniform(0.5, 2.0, shape))
+
+    def tensors(kx, ky, kz):
+        cells = make_cells(kx, ky=ky, kz=kz, **sizes)
+        return flow_tensors(cells, make_partition(shape, ratio=(3, 3, 5)), bc, border=1).tensor
+
+    closed = [a.copy() for a in (kx, ky, kz)]
+    for a in closed:
+        a[3:6, 4, 2] = a[0, 1, 2] = 0.0
+    expected = tensors(*closed)
+    np.testing.assert_allclose(tensors(kx, ky, kz), expected, rtol=0, atol=1e-12 * np.abs(expected).max())
+    assert expected[0, 0, 0, 0, 0] > 0 and expected[1, 1, 0, 0, 0] > 0
