@@ -3,10 +3,12 @@
 section 9.2, from memory) and a useful approximate inverse."""
 
 import numpy as np
+import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from upscale.core.multigrid import (MAX_COARSE, LineSmoother, MultigridCycle, ShiftedCycles, _gauss_seidel,
+from upscale.core.multigrid import (MAX_COARSE, LineSmoother, MultigridCycle, ShiftedCycles, _common_pattern,
+                                    _gauss_seidel,
                                     aggregation_hierarchy, largest_eigenvalue, scaled_near_null, tentative_prolongator)
 
 
@@ -231,3 +233,47 @@ def test_gauss_seidel_sweeps_match_the_textbook_recurrence():
         x = start.copy()
         _gauss_seidel(A, x, b, forward)
         np.testing.assert_allclose(x, expected, rtol=1e-12, atol=1e-12)
+
+
+def _shuffled_rows(M):
+    """M in CSR with every row's entries in reverse order and its first entry split in two
+    (unsorted indices and duplicates: not canonical, the same matrix)."""
+    M = sp.csr_matrix(M)
+    rows, data, indices, indptr = [], [], [], [0]
+    for i in range(M.shape[0]):
+        cols, vals = M.indices[M.indptr[i]:M.indptr[i + 1]][::-1], M.data[M.indptr[i]:M.indptr[i + 1]][::-1]
+        if cols.size:
+            cols, vals = np.r_[cols[:1], cols], np.r_[0.5 * vals[:1], 0.5 * vals[:1], vals[1:]]
+        indices.append(cols), data.append(vals), indptr.append(indptr[-1] + cols.size)
+    shuffled = sp.csr_matrix((np.concatenate(data), np.concatenate(indices), indptr), shape=M.shape)
+    assert not shuffled.has_canonical_format
+    return shuffled
+
+
+@pytest.mark.parametrize("case", ["diagonal within", "galerkin within", "patterns apart", "not canonical"])
+def test_two_matrices_on_one_pattern_sum_as_scipy_sums_them(case):
+    # The shared pattern of a level's stiffness and storage against SciPy's own sparse sum
+    # (scipy.sparse, A + B): the sum of the two value arrays on the returned pattern must
+    # be A + B exactly (each value is one of A's or B's, or both added once, as SciPy adds
+    # them), with sorted indices; and each array alone must be its matrix.
+    rng = np.random.default_rng(3)
+    K = heterogeneous_laplacian(shape=(6, 5, 4))
+    n = K.shape[0]
+    if case == "diagonal within":
+        A, B = K, sp.diags(rng.uniform(1.0, 2.0, n))
+    elif case == "galerkin within":
+        _, (P, *_), (R, *_) = aggregation_hierarchy(K, max_coarse=8)
+        A, B = R @ K @ P, R @ sp.diags(rng.uniform(1.0, 2.0, n)) @ P
+    else:
+        A, B = K, sp.random(n, n, density=0.02, random_state=4, format="csr")
+        if case == "not canonical":
+            A, B = _shuffled_rows(A), _shuffled_rows(B)
+    indptr, indices, a, b = _common_pattern(A, B)
+    shape = A.shape
+
+    def on_pattern(values):
+        return sp.csr_matrix((values, indices, indptr), shape=shape)
+
+    assert on_pattern(a).has_canonical_format  # sorted, no duplicates (SciPy's own check)
+    assert abs(on_pattern(a + b) - (A + B)).max() == 0.0
+    assert abs(on_pattern(a) - A).max() == 0.0 and abs(on_pattern(b) - B).max() == 0.0

@@ -358,8 +358,17 @@ class ShiftedCycles:
 
 def _common_pattern(A: sp.spmatrix, B: sp.spmatrix):
     """Two matrices of one shape on the union of their patterns, sorted: (indptr, indices,
-    A's values, B's values), with A + B = csr((A's + B's values, indices, indptr))."""
-    A, B = sp.coo_matrix(A), sp.coo_matrix(B)
+    A's values, B's values), with A + B = csr((A's + B's values, indices, indptr)).
+
+    Where B's pattern lies within A's (a stiffness and its diagonal or Galerkin storage),
+    B's values are placed on A's pattern by a search of sorted entry keys; else both are
+    summed onto the union."""
+    A, B = _canonical(A), sp.csr_matrix(B)
+    keys_a, keys_b = _entry_keys(A), _entry_keys(B)
+    at = np.minimum(np.searchsorted(keys_a, keys_b), max(keys_a.size - 1, 0))
+    if keys_a.size and np.array_equal(keys_a[at], keys_b):  # B's entries need no order
+        return A.indptr, A.indices, A.data.astype(float), np.bincount(at, weights=B.data, minlength=A.nnz)
+    A, B = A.tocoo(), B.tocoo()
     rows, columns = np.concatenate([A.row, B.row]), np.concatenate([A.col, B.col])
     zeros_a, zeros_b = np.zeros(A.nnz), np.zeros(B.nnz)
     on_pattern = [sp.csr_matrix((np.concatenate(values), (rows, columns)), shape=A.shape)
@@ -367,6 +376,21 @@ def _common_pattern(A: sp.spmatrix, B: sp.spmatrix):
     for M in on_pattern:  # the same coordinates summed and sorted alike: one pattern
         M.sum_duplicates()
     return on_pattern[0].indptr, on_pattern[0].indices, on_pattern[0].data, on_pattern[1].data
+
+
+def _canonical(M: sp.spmatrix) -> sp.csr_matrix:
+    """M in CSR with sorted indices and no duplicates (a copy only where needed)."""
+    M = sp.csr_matrix(M)
+    if not M.has_canonical_format:
+        M = M.copy()
+        M.sum_duplicates()
+    return M
+
+
+def _entry_keys(M: sp.csr_matrix) -> np.ndarray:
+    """row * n + column of every stored entry of a CSR matrix (increasing if it is canonical)."""
+    rows = np.repeat(np.arange(M.shape[0], dtype=np.int64), np.diff(M.indptr))
+    return rows * M.shape[1] + M.indices
 
 
 def scaled_near_null(scale: np.ndarray) -> np.ndarray:
