@@ -13,7 +13,8 @@ boundary conditions:
 
 With a border, the local domain reaches ``border`` fine cells into the neighbours
 (clipped at the model edge) and the tensor is -<u> <grad p>^-1 with both averages taken
-over the target block only (Wu, Efendiev & Hou 2002; Wen, Durlofsky & Edwards 2003).
+over the target block only (Wu, Efendiev & Hou 2002; Wen, Durlofsky & Edwards 2003), the
+gradient over the target's cells connected to the boundary data.
 Blocks of one local shape are solved together: vectorised assembly into banded
 matrices and a batched Cholesky factorisation (:mod:`upscale.core.banded`).
 
